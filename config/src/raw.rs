@@ -1,0 +1,356 @@
+//! The raw configuration: serde structs that mirror the TOML file key for key.
+//!
+//! Every leaf is an `Option` so that a missing key is reported by validation, together
+//! with every other problem, instead of stopping serde at the first one. Unknown keys
+//! are collected with `serde_ignored` and reported as errors (the effect of
+//! `deny_unknown_fields`, but all of them at once). Only a value of the wrong TOML type
+//! stops parsing early, and that error still carries its line and column.
+
+use serde::Deserialize;
+
+use crate::errors::{ConfigError, ConfigErrors};
+use crate::spans::SpanIndex;
+
+/// The whole file.
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawConfig {
+    pub stage: Option<RawStage>,
+    pub legs: Option<Vec<RawLeg>>,
+    pub tiltmeter: Option<RawTiltmeter>,
+    pub control: Option<RawControl>,
+    pub limits: Option<RawLimits>,
+    pub recording: Option<RawRecording>,
+    pub network: Option<RawNetwork>,
+    pub simulation: Option<RawSimulation>,
+}
+
+/// `[stage]`
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawStage {
+    pub name: Option<String>,
+}
+
+/// One `[[legs]]` entry.
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawLeg {
+    pub name: Option<String>,
+    pub x_m: Option<f64>,
+    pub y_m: Option<f64>,
+    pub length_m: Option<f64>,
+    pub material: Option<String>,
+    pub cte_per_k: Option<f64>,
+    pub heater_resistance_ohm: Option<f64>,
+    pub heater_max_power_w: Option<f64>,
+    pub thermometer_channel: Option<i64>,
+}
+
+/// `[tiltmeter]`
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawTiltmeter {
+    pub rate_hz: Option<f64>,
+    pub range_urad: Option<f64>,
+    pub scale_x_urad_per_unit: Option<f64>,
+    pub scale_y_urad_per_unit: Option<f64>,
+    pub offset_x_unit: Option<f64>,
+    pub offset_y_unit: Option<f64>,
+    pub cross_coupling: Option<Vec<Vec<f64>>>,
+}
+
+/// `[control]`
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawControl {
+    pub rate_hz: Option<f64>,
+    pub mode: Option<String>,
+    pub setpoint_x_urad: Option<f64>,
+    pub setpoint_y_urad: Option<f64>,
+    pub setpoint_ramp_urad_per_s: Option<f64>,
+    pub leg_bias_c: Option<f64>,
+    pub leg_bias_ramp_k_per_s: Option<f64>,
+    pub manual_power_w: Option<f64>,
+    pub tilt_loop: Option<RawTiltLoop>,
+    pub leg_loop: Option<RawLegLoop>,
+}
+
+/// `[control.tilt_loop]`: the outer loops, one per axis, sharing gains.
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawTiltLoop {
+    pub kp_urad_per_urad: Option<f64>,
+    pub ti_s: Option<f64>,
+    pub td_s: Option<f64>,
+    pub derivative_filter_s: Option<f64>,
+    pub setpoint_weight: Option<f64>,
+    pub tracking_time_s: Option<f64>,
+    pub output_limit_urad: Option<f64>,
+    pub slew_urad_per_s: Option<f64>,
+}
+
+/// `[control.leg_loop]`: the inner loops, one per leg, sharing gains.
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawLegLoop {
+    pub kp_w_per_k: Option<f64>,
+    pub ti_s: Option<f64>,
+    pub td_s: Option<f64>,
+    pub derivative_filter_s: Option<f64>,
+    pub setpoint_weight: Option<f64>,
+    pub tracking_time_s: Option<f64>,
+    pub slew_w_per_s: Option<f64>,
+}
+
+/// `[limits]`
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawLimits {
+    pub max_leg_temp_c: Option<f64>,
+    pub max_total_power_w: Option<f64>,
+    pub tilt_range_urad: Option<f64>,
+}
+
+/// `[recording]`
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawRecording {
+    pub enabled: Option<bool>,
+    pub dir: Option<String>,
+    pub flush_interval_s: Option<f64>,
+    pub segment_duration_h: Option<f64>,
+    pub segment_max_mib: Option<f64>,
+    pub queue_capacity_rows: Option<i64>,
+}
+
+/// `[network]`
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawNetwork {
+    pub bind: Option<String>,
+}
+
+/// `[simulation]`: the simulated stage's physics and disturbances (demo and tests only).
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawSimulation {
+    pub seed: Option<i64>,
+    pub ambient_mean_c: Option<f64>,
+    pub ambient_daily_swing_k: Option<f64>,
+    pub ambient_walk_k: Option<f64>,
+    pub ambient_walk_correlation_h: Option<f64>,
+    pub gradient_x_k_per_m: Option<f64>,
+    pub gradient_y_k_per_m: Option<f64>,
+    pub gradient_daily_x_k_per_m: Option<f64>,
+    pub gradient_daily_y_k_per_m: Option<f64>,
+    pub floor_drift_x_urad_per_day: Option<f64>,
+    pub floor_drift_y_urad_per_day: Option<f64>,
+    pub floor_wobble_x_urad: Option<f64>,
+    pub floor_wobble_y_urad: Option<f64>,
+    pub tilt_noise_nrad_per_sqrt_hz: Option<f64>,
+    pub tilt_walk_nrad_per_sqrt_h: Option<f64>,
+    pub tilt_quantum_nrad: Option<f64>,
+    pub thermometer_noise_mk: Option<f64>,
+    pub leg_heat_capacity_j_per_k: Option<f64>,
+    pub leg_conductance_w_per_k: Option<f64>,
+    pub heater_heat_capacity_j_per_k: Option<f64>,
+    pub heater_coupling_w_per_k: Option<f64>,
+    pub heater_loss_w_per_k: Option<f64>,
+    pub leg_spread_ratio: Option<f64>,
+}
+
+/// Deserializes the text into [`RawConfig`], collecting every unknown key.
+pub(crate) fn parse(text: &str, spans: &SpanIndex) -> Result<RawConfig, ConfigErrors> {
+    let de = toml::Deserializer::parse(text).map_err(|e| {
+        ConfigErrors(vec![spans.error_at(
+            e.span().unwrap_or(0..0),
+            "",
+            String::new(),
+            format!("TOML syntax error: {}", e.message().trim()),
+            "valid TOML".into(),
+        )])
+    })?;
+    let mut unknown: Vec<String> = Vec::new();
+    let result: Result<RawConfig, _> =
+        serde_ignored::deserialize(de, |p| unknown.push(format_path(&p)));
+    let raw = match result {
+        Ok(r) => r,
+        Err(e) => {
+            let span = e.span().unwrap_or(0..0);
+            let path = path_at(spans, &span);
+            return Err(ConfigErrors(vec![spans.error_at(
+                span.clone(),
+                &path,
+                spans.found(&path),
+                e.message().trim().to_string(),
+                "see config/examples/hardware-template.toml for every key and its type".into(),
+            )]));
+        }
+    };
+    if unknown.is_empty() {
+        return Ok(raw);
+    }
+    let errs: Vec<ConfigError> = unknown
+        .iter()
+        .map(|p| {
+            let mut e = spans.error(p, "unknown key".into(), allowed_keys(p));
+            e.found.clear();
+            e
+        })
+        .collect();
+    Err(ConfigErrors(errs).sorted())
+}
+
+/// serde_ignored's path → our `table.key[index]` notation.
+fn format_path(p: &serde_ignored::Path<'_>) -> String {
+    use serde_ignored::Path;
+    match p {
+        Path::Root => String::new(),
+        Path::Seq { parent, index } => format!("{}[{index}]", format_path(parent)),
+        Path::Map { parent, key } => {
+            let pre = format_path(parent);
+            if pre.is_empty() {
+                key.clone()
+            } else {
+                format!("{pre}.{key}")
+            }
+        }
+        Path::Some { parent }
+        | Path::NewtypeStruct { parent }
+        | Path::NewtypeVariant { parent } => format_path(parent),
+    }
+}
+
+/// The deepest known key whose value contains `span` (for serde's type errors).
+fn path_at(spans: &SpanIndex, span: &std::ops::Range<usize>) -> String {
+    spans.innermost_containing(span)
+}
+
+/// The keys accepted in the table that holds `path`, for "unknown key" messages.
+fn allowed_keys(path: &str) -> String {
+    let table = match path.rfind('.') {
+        Some(i) => &path[..i],
+        None => "",
+    };
+    let table = strip_indices(table);
+    let keys: &[&str] = match table.as_str() {
+        "" => &[
+            "stage",
+            "legs",
+            "tiltmeter",
+            "control",
+            "limits",
+            "recording",
+            "network",
+            "simulation",
+        ],
+        "stage" => &["name"],
+        "legs" => &[
+            "name",
+            "x_m",
+            "y_m",
+            "length_m",
+            "material",
+            "cte_per_k",
+            "heater_resistance_ohm",
+            "heater_max_power_w",
+            "thermometer_channel",
+        ],
+        "tiltmeter" => &[
+            "rate_hz",
+            "range_urad",
+            "scale_x_urad_per_unit",
+            "scale_y_urad_per_unit",
+            "offset_x_unit",
+            "offset_y_unit",
+            "cross_coupling",
+        ],
+        "control" => &[
+            "rate_hz",
+            "mode",
+            "setpoint_x_urad",
+            "setpoint_y_urad",
+            "setpoint_ramp_urad_per_s",
+            "leg_bias_c",
+            "leg_bias_ramp_k_per_s",
+            "manual_power_w",
+            "tilt_loop",
+            "leg_loop",
+        ],
+        "control.tilt_loop" => &[
+            "kp_urad_per_urad",
+            "ti_s",
+            "td_s",
+            "derivative_filter_s",
+            "setpoint_weight",
+            "tracking_time_s",
+            "output_limit_urad",
+            "slew_urad_per_s",
+        ],
+        "control.leg_loop" => &[
+            "kp_w_per_k",
+            "ti_s",
+            "td_s",
+            "derivative_filter_s",
+            "setpoint_weight",
+            "tracking_time_s",
+            "slew_w_per_s",
+        ],
+        "limits" => &["max_leg_temp_c", "max_total_power_w", "tilt_range_urad"],
+        "recording" => &[
+            "enabled",
+            "dir",
+            "flush_interval_s",
+            "segment_duration_h",
+            "segment_max_mib",
+            "queue_capacity_rows",
+        ],
+        "network" => &["bind"],
+        "simulation" => &[
+            "seed",
+            "ambient_mean_c",
+            "ambient_daily_swing_k",
+            "ambient_walk_k",
+            "ambient_walk_correlation_h",
+            "gradient_x_k_per_m",
+            "gradient_y_k_per_m",
+            "gradient_daily_x_k_per_m",
+            "gradient_daily_y_k_per_m",
+            "floor_drift_x_urad_per_day",
+            "floor_drift_y_urad_per_day",
+            "floor_wobble_x_urad",
+            "floor_wobble_y_urad",
+            "tilt_noise_nrad_per_sqrt_hz",
+            "tilt_walk_nrad_per_sqrt_h",
+            "tilt_quantum_nrad",
+            "thermometer_noise_mk",
+            "leg_heat_capacity_j_per_k",
+            "leg_conductance_w_per_k",
+            "heater_heat_capacity_j_per_k",
+            "heater_coupling_w_per_k",
+            "heater_loss_w_per_k",
+            "leg_spread_ratio",
+        ],
+        _ => &[],
+    };
+    if keys.is_empty() {
+        "no keys here".into()
+    } else {
+        keys.join(", ")
+    }
+}
+
+fn strip_indices(p: &str) -> String {
+    let mut out = String::with_capacity(p.len());
+    let mut depth = 0;
+    for c in p.chars() {
+        match c {
+            '[' => depth += 1,
+            ']' => depth -= 1,
+            _ if depth == 0 => out.push(c),
+            _ => {}
+        }
+    }
+    out
+}

@@ -1,0 +1,254 @@
+//! The validated, typed configuration handed to the rest of stilt.
+//!
+//! Field names carry their units. Values here are already checked: finite, in range,
+//! and consistent with each other (see `validate.rs` for every rule).
+
+use std::fmt;
+use std::net::SocketAddr;
+use std::path::PathBuf;
+
+use crate::materials::Material;
+
+/// A whole validated configuration.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Config {
+    /// Human name of the stage, for summaries and file metadata.
+    pub stage_name: String,
+    /// The legs, in file order; at least three, not all on one line.
+    pub legs: Vec<Leg>,
+    /// The two-axis tiltmeter.
+    pub tiltmeter: Tiltmeter,
+    /// The control cascade.
+    pub control: Control,
+    /// Hard software limits.
+    pub limits: Limits,
+    /// Where and how samples are recorded.
+    pub recording: Recording,
+    /// The HTTP API.
+    pub network: Network,
+    /// The simulated stage used by `stiltd demo` and the tests.
+    pub simulation: Simulation,
+    /// The exact text this configuration was read from (recorded with each run).
+    pub source_text: String,
+}
+
+/// One leg of the stage, with its heater and thermometer.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Leg {
+    /// Short name (`A`, `north` …), unique.
+    pub name: String,
+    /// Position of the leg's top on the plate, metres from the plate's reference point.
+    pub x_m: f64,
+    /// See `x_m`.
+    pub y_m: f64,
+    /// Length of the part of the leg whose temperature is controlled, metres.
+    pub length_m: f64,
+    /// The leg's material and expansion coefficient.
+    pub material: Material,
+    /// Heater element resistance, ohm.
+    pub heater_resistance_ohm: f64,
+    /// Heater power limit, watts (heaters only heat: commands are clamped to 0…this).
+    pub heater_max_power_w: f64,
+    /// The thermometer channel that reads this leg.
+    pub thermometer_channel: usize,
+}
+
+impl Leg {
+    /// Leg length change per kelvin, metres per kelvin (α·L).
+    pub fn expansion_m_per_k(&self) -> f64 {
+        self.material.cte_per_k * self.length_m
+    }
+}
+
+/// The two-axis tiltmeter and its calibration: `tilt = M · (scale ⊙ (raw − offset))`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Tiltmeter {
+    /// Sampling rate, Hz; an integer multiple of the control rate.
+    pub rate_hz: f64,
+    /// Usable range, ± microradians.
+    pub range_urad: f64,
+    /// Per-axis scale, microradians per raw unit.
+    pub scale_urad_per_unit: [f64; 2],
+    /// Per-axis offset, raw units.
+    pub offset_unit: [f64; 2],
+    /// 2×2 matrix for axis misalignment and cross-coupling (identity when absent).
+    pub cross_coupling: [[f64; 2]; 2],
+}
+
+impl Tiltmeter {
+    /// Applies the calibration to one raw reading, giving microradians.
+    pub fn calibrate(&self, raw: [f64; 2]) -> [f64; 2] {
+        let s = [
+            (raw[0] - self.offset_unit[0]) * self.scale_urad_per_unit[0],
+            (raw[1] - self.offset_unit[1]) * self.scale_urad_per_unit[1],
+        ];
+        let m = &self.cross_coupling;
+        [
+            m[0][0] * s[0] + m[0][1] * s[1],
+            m[1][0] * s[0] + m[1][1] * s[1],
+        ]
+    }
+}
+
+/// The controller's operating mode.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Mode {
+    /// Heaters at zero.
+    Off,
+    /// Fixed heater powers.
+    Manual,
+    /// Inner loops hold each leg at its temperature setpoint.
+    Temperature,
+    /// The full cascade: tilt loops set leg temperature setpoints.
+    Level,
+}
+
+impl Mode {
+    /// Every mode, in the order of increasing automation.
+    pub const ALL: [Mode; 4] = [Mode::Off, Mode::Manual, Mode::Temperature, Mode::Level];
+
+    /// The configuration and API spelling.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Mode::Off => "off",
+            Mode::Manual => "manual",
+            Mode::Temperature => "temperature",
+            Mode::Level => "level",
+        }
+    }
+
+    /// Parses the configuration and API spelling.
+    pub fn parse(s: &str) -> Option<Mode> {
+        Mode::ALL.into_iter().find(|m| m.as_str() == s)
+    }
+
+    /// A small integer for recording (0 off, 1 manual, 2 temperature, 3 level).
+    pub fn code(self) -> u8 {
+        self as u8
+    }
+}
+
+impl fmt::Display for Mode {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+/// Gains and limits of one PID loop, in the ideal (ISA) form
+/// `u = Kp·(b·r − y) + Kp/Ti ∫e dt − Kp·Td·dy_f/dt`.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct LoopGains {
+    /// Proportional gain, in output units per input unit.
+    pub kp: f64,
+    /// Integral time, seconds; `None` disables integral action.
+    pub ti_s: Option<f64>,
+    /// Derivative time, seconds (0 disables derivative action).
+    pub td_s: f64,
+    /// Time constant of the first-order filter on the derivative, seconds.
+    pub derivative_filter_s: f64,
+    /// Setpoint weight `b` on the proportional term, 0…1.
+    pub setpoint_weight: f64,
+    /// Tracking time for back-calculation anti-windup, seconds.
+    pub tracking_time_s: f64,
+    /// Output slew limit, output units per second; `None` for no limit.
+    pub slew_per_s: Option<f64>,
+}
+
+/// The control cascade.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Control {
+    /// Control tick rate, Hz.
+    pub rate_hz: f64,
+    /// Mode at start.
+    pub mode: Mode,
+    /// Tilt setpoint per axis, microradians.
+    pub setpoint_urad: [f64; 2],
+    /// How fast the tilt setpoint in use moves towards a new target, µrad/s.
+    pub setpoint_ramp_urad_per_s: f64,
+    /// Common leg temperature setpoint, °C (the bias that lets the loop push both ways).
+    pub leg_bias_c: f64,
+    /// Ramp limit on leg temperature setpoints, K/s.
+    pub leg_bias_ramp_k_per_s: f64,
+    /// Heater power in `manual` mode, watts per leg.
+    pub manual_power_w: f64,
+    /// Outer loops (tilt → leg temperature pattern), output in µrad of correction.
+    pub tilt_loop: LoopGains,
+    /// Symmetric limit on each tilt loop's output, microradians.
+    pub tilt_output_limit_urad: f64,
+    /// Inner loops (leg temperature → heater power), output in watts.
+    pub leg_loop: LoopGains,
+}
+
+impl Control {
+    /// The control period, seconds.
+    pub fn period_s(&self) -> f64 {
+        1.0 / self.rate_hz
+    }
+}
+
+/// Software limits.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Limits {
+    /// Highest allowed leg temperature, °C.
+    pub max_leg_temp_c: f64,
+    /// Highest allowed sum of heater powers, watts.
+    pub max_total_power_w: f64,
+    /// Tilt beyond which the reading is treated as out of range, ± µrad.
+    pub tilt_range_urad: f64,
+}
+
+/// Recording settings.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Recording {
+    /// Whether samples are recorded at all.
+    pub enabled: bool,
+    /// Folder for run segments.
+    pub dir: PathBuf,
+    /// Longest time between flushes that reach the disk, seconds.
+    pub flush_interval_s: f64,
+    /// A new segment starts after this long, hours.
+    pub segment_duration_h: f64,
+    /// A new segment starts when the current one reaches this size, MiB.
+    pub segment_max_mib: f64,
+    /// Rows buffered between the control loop and the writer before rows are dropped.
+    pub queue_capacity_rows: usize,
+}
+
+/// The HTTP API.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Network {
+    /// Address and port to listen on.
+    pub bind: SocketAddr,
+}
+
+/// Physics and disturbances of the simulated stage (invented demo values by default).
+#[derive(Debug, Clone, PartialEq)]
+#[allow(missing_docs)]
+pub struct Simulation {
+    /// Seed of the portable random generator; equal seeds give equal runs.
+    pub seed: u64,
+    pub ambient_mean_c: f64,
+    /// Amplitude of the daily sinusoidal swing of the room air, K.
+    pub ambient_daily_swing_k: f64,
+    /// RMS of the slow random wander of the room air, K.
+    pub ambient_walk_k: f64,
+    pub ambient_walk_correlation_h: f64,
+    /// Static air temperature gradient across the stage, K/m.
+    pub gradient_k_per_m: [f64; 2],
+    /// Amplitude of the daily part of the gradient, K/m.
+    pub gradient_daily_k_per_m: [f64; 2],
+    pub floor_drift_urad_per_day: [f64; 2],
+    /// Amplitude of the floor's daily tilt wobble, µrad.
+    pub floor_wobble_urad: [f64; 2],
+    pub tilt_noise_nrad_per_sqrt_hz: f64,
+    pub tilt_walk_nrad_per_sqrt_h: f64,
+    pub tilt_quantum_nrad: f64,
+    pub thermometer_noise_mk: f64,
+    pub leg_heat_capacity_j_per_k: f64,
+    pub leg_conductance_w_per_k: f64,
+    pub heater_heat_capacity_j_per_k: f64,
+    pub heater_coupling_w_per_k: f64,
+    pub heater_loss_w_per_k: f64,
+    /// Relative spread of the legs' thermal properties (0.05 = ±5 %).
+    pub leg_spread_ratio: f64,
+}

@@ -1,0 +1,2 @@
+//! stiltd.
+fn main() {}

@@ -1,0 +1,5 @@
+//! stiltd's library: the control core, the pipeline that runs it, and its sinks.
+//!
+//! The binaries (`src/bin/`) are thin: they parse the command line and call into here.
+
+pub mod rows;

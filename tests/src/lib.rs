@@ -1,0 +1,1 @@
+//! Helpers for stilt's system tests, which run the real binaries.
