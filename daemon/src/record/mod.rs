@@ -1,0 +1,1 @@
+//! HDF5 recording (being built: see issue 4).
