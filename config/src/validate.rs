@@ -855,7 +855,7 @@ fn simulation(v: &mut V<'_>, s: RawSimulation) -> Option<Simulation> {
     let tilt_walk = v.num(
         &p("tilt_walk_nrad_per_sqrt_h"),
         s.tilt_walk_nrad_per_sqrt_h,
-        Some(0.5),
+        Some(0.2),
         nonneg,
     );
     let tilt_quantum = v.num(

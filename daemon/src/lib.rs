@@ -1,8 +1,18 @@
 //! stiltd's library: the control core, the pipeline that runs it, and its sinks.
 //!
+//! - [`core`]: pure control code (PID, geometry, cascade), time as an argument;
+//! - [`pipeline`]: readings in, ticks, rows out — the same in every world;
+//! - [`sim`]: the in-process world (simulated stage wired to the pipeline);
+//! - [`demo`]: `stiltd demo` and its summary;
+//! - [`rows`]: the domain rows and the [`rows::RowSink`] trait;
+//! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits.
+//!
 //! The binaries (`src/bin/`) are thin: they parse the command line and call into here.
 
 pub mod analysis;
 pub mod core;
+pub mod demo;
+pub mod pipeline;
 pub mod record;
 pub mod rows;
+pub mod sim;

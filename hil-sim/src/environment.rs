@@ -50,7 +50,8 @@ impl Room {
             return;
         }
         let a = (-dt / self.walk_tau_s).exp();
-        self.walk_k = self.walk_k * a + self.walk_sigma_k * (1.0 - a * a).sqrt() * self.noise.gauss();
+        self.walk_k =
+            self.walk_k * a + self.walk_sigma_k * (1.0 - a * a).sqrt() * self.noise.gauss();
         self.last_t = t_s;
     }
 
@@ -101,7 +102,9 @@ impl Floor {
     /// Floor tilt at time `t_s`, µrad per axis.
     pub fn tilt_urad(&self, t_s: f64) -> [f64; 2] {
         let w = std::f64::consts::TAU * t_s / DAY_S;
-        [0, 1].map(|k| self.drift_urad_per_s[k] * t_s + self.wobble_urad[k] * (w + self.phase[k]).sin())
+        [0, 1].map(|k| {
+            self.drift_urad_per_s[k] * t_s + self.wobble_urad[k] * (w + self.phase[k]).sin()
+        })
     }
 }
 
@@ -110,7 +113,9 @@ mod tests {
     use super::*;
 
     fn sim() -> Simulation {
-        stilt_config::load_str(stilt_config::DEMO_SCENARIO, "demo").unwrap().simulation
+        stilt_config::load_str(stilt_config::DEMO_SCENARIO, "demo")
+            .unwrap()
+            .simulation
     }
 
     #[test]

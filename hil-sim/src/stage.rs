@@ -140,7 +140,11 @@ impl SimStage {
     /// nothing (a heater cannot cool); the daemon's own clamp is not assumed.
     pub fn set_heater_power(&mut self, leg: usize, power_w: f64) {
         if let Some(l) = self.legs.get_mut(leg) {
-            l.power_w = if power_w.is_finite() { power_w.max(0.0) } else { 0.0 };
+            l.power_w = if power_w.is_finite() {
+                power_w.max(0.0)
+            } else {
+                0.0
+            };
         }
     }
 
@@ -183,13 +187,18 @@ impl SimStage {
         let t = self.plate_tilt_urad();
         let mut in_range = true;
         let raw = [0, 1].map(|k| {
-            let mut v = t[k] + self.tilt_walk_urad[k] + self.tilt_sigma_urad * self.tilt_noise.gauss();
+            let mut v =
+                t[k] + self.tilt_walk_urad[k] + self.tilt_sigma_urad * self.tilt_noise.gauss();
             if self.tilt_quantum_urad > 0.0 {
                 v = (v / self.tilt_quantum_urad).round() * self.tilt_quantum_urad;
             }
             if !(v.abs() <= self.tilt_range_urad) {
                 in_range = false;
-                v = if v.is_nan() { 0.0 } else { v.clamp(-self.tilt_range_urad, self.tilt_range_urad) };
+                v = if v.is_nan() {
+                    0.0
+                } else {
+                    v.clamp(-self.tilt_range_urad, self.tilt_range_urad)
+                };
             }
             v
         });
@@ -237,7 +246,8 @@ fn plane_fit_rows(pts: &[(f64, f64)]) -> [Vec<f64>; 2] {
     }
     let m = [[sxx, sxy, sx], [sxy, syy, sy], [sx, sy, n]];
     let det3 = |m: &[[f64; 3]; 3]| {
-        m[0][0] * (m[1][1] * m[2][2] - m[1][2] * m[2][1]) - m[0][1] * (m[1][0] * m[2][2] - m[1][2] * m[2][0])
+        m[0][0] * (m[1][1] * m[2][2] - m[1][2] * m[2][1])
+            - m[0][1] * (m[1][0] * m[2][2] - m[1][2] * m[2][0])
             + m[0][2] * (m[1][0] * m[2][1] - m[1][1] * m[2][0])
     };
     let d = det3(&m);
@@ -303,7 +313,10 @@ mod tests {
         let after = s.plate_tilt_urad();
         let expect = 23.1e-6 * 0.30 * dt / (1.5 * 0.25) * 1e6;
         // Leg A sits on +x, so its growth tilts the plate about x (dz/dx > 0) only.
-        assert!(((after[0] - before[0]) - expect).abs() < 0.02 * expect.abs(), "{after:?} {expect}");
+        assert!(
+            ((after[0] - before[0]) - expect).abs() < 0.02 * expect.abs(),
+            "{after:?} {expect}"
+        );
         assert!((after[1] - before[1]).abs() < 0.05 * expect.abs());
     }
 
@@ -316,9 +329,16 @@ mod tests {
         let mut s = SimStage::new(&cfg);
         let n = 20_000;
         let truth = s.plate_tilt_urad();
-        let var: f64 = (0..n).map(|_| (s.read_tilt().raw[0] - truth[0]).powi(2)).sum::<f64>() / n as f64;
+        let var: f64 = (0..n)
+            .map(|_| (s.read_tilt().raw[0] - truth[0]).powi(2))
+            .sum::<f64>()
+            / n as f64;
         let expect = 10e-3 * (10.0f64 / 2.0).sqrt();
-        assert!((var.sqrt() - expect).abs() < 0.02 * expect, "{} vs {expect}", var.sqrt());
+        assert!(
+            (var.sqrt() - expect).abs() < 0.02 * expect,
+            "{} vs {expect}",
+            var.sqrt()
+        );
     }
 
     #[test]

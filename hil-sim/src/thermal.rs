@@ -40,10 +40,7 @@ impl LegThermalParams {
             self.heater_loss_w_per_k,
             self.leg_conductance_w_per_k,
         );
-        let a = [
-            [-(ghb + gha) / ch, ghb / ch],
-            [ghb / cb, -(ghb + gba) / cb],
-        ];
+        let a = [[-(ghb + gha) / ch, ghb / ch], [ghb / cb, -(ghb + gba) / cb]];
         let b = [[1.0 / ch, gha / ch], [0.0, gba / cb]];
         (a, b)
     }

@@ -87,7 +87,11 @@ impl Geometry {
 
     /// The tilt (µrad) that leg temperature offsets `dt_k` produce.
     pub fn tilt_from_temperature_offsets(&self, dt_k: &[f64]) -> [f64; 2] {
-        let h: Vec<f64> = dt_k.iter().zip(&self.expansion_m_per_k).map(|(t, e)| t * e).collect();
+        let h: Vec<f64> = dt_k
+            .iter()
+            .zip(&self.expansion_m_per_k)
+            .map(|(t, e)| t * e)
+            .collect();
         self.tilt_from_heights(&h).map(|r| r * URAD_PER_RAD)
     }
 }
@@ -110,7 +114,10 @@ mod tests {
             x_m: x,
             y_m: y,
             length_m: 0.30,
-            material: stilt_config::Material { name: "aluminium".into(), cte_per_k: 23.1e-6 },
+            material: stilt_config::Material {
+                name: "aluminium".into(),
+                cte_per_k: 23.1e-6,
+            },
             heater_resistance_ohm: 50.0,
             heater_max_power_w: 2.0,
             thermometer_channel: 0,
@@ -133,7 +140,10 @@ mod tests {
         // through them: c = 1, 2a + c = 3 ⇒ a = 1 µm/m, 4b + c = −1 ⇒ b = −0.5 µm/m.
         let g = Geometry::new(&[leg(0.0, 0.0), leg(2.0, 0.0), leg(0.0, 4.0)]);
         let t = g.tilt_from_heights(&[1e-6, 3e-6, -1e-6]);
-        assert!((t[0] - 1e-6).abs() < 1e-18 && (t[1] + 0.5e-6).abs() < 1e-18, "{t:?}");
+        assert!(
+            (t[0] - 1e-6).abs() < 1e-18 && (t[1] + 0.5e-6).abs() < 1e-18,
+            "{t:?}"
+        );
     }
 
     #[test]
@@ -147,7 +157,12 @@ mod tests {
 
     #[test]
     fn inverse_is_exact_zero_mean_and_least_norm() {
-        let legs = vec![leg(0.3, 0.1), leg(-0.2, 0.25), leg(-0.1, -0.3), leg(0.25, -0.2)];
+        let legs = vec![
+            leg(0.3, 0.1),
+            leg(-0.2, 0.25),
+            leg(-0.1, -0.3),
+            leg(0.25, -0.2),
+        ];
         let g = Geometry::new(&legs);
         let want = [1.7e-6, -0.9e-6];
         let h = g.heights_for_tilt(want);
@@ -158,7 +173,11 @@ mod tests {
         let null = [1.0, -1.0, 1.0, -1.0];
         let dt = g.tilt_from_heights(&null);
         let proj: Vec<f64> = g.heights_for_tilt(dt);
-        let n: Vec<f64> = null.iter().zip(&proj).map(|(a, b)| (a - b) * 1e-7).collect();
+        let n: Vec<f64> = null
+            .iter()
+            .zip(&proj)
+            .map(|(a, b)| (a - b) * 1e-7)
+            .collect();
         let mean = n.iter().sum::<f64>() / 4.0;
         let n: Vec<f64> = n.iter().map(|x| x - mean).collect();
         let norm = |v: &[f64]| v.iter().map(|x| x * x).sum::<f64>();

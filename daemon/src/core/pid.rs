@@ -102,7 +102,11 @@ impl Pid {
         self.limited = u != v;
         let i_now = self.integral;
         if let Some(ti) = g.ti_s {
-            let e_term = if integrate { g.kp * h / ti * (r - y) } else { 0.0 };
+            let e_term = if integrate {
+                g.kp * h / ti * (r - y)
+            } else {
+                0.0
+            };
             self.integral += e_term + h / g.tracking_time_s * (u - v);
         } else {
             // No integral action: the "integral" holds the bias that keeps u continuous
@@ -111,11 +115,21 @@ impl Pid {
         self.derivative = d;
         self.y_prev = Some(y);
         self.u_prev = u;
-        LoopTerms { p, i: i_now, d, out: u }
+        LoopTerms {
+            p,
+            i: i_now,
+            d,
+            out: u,
+        }
     }
 
     fn hold_terms(&self) -> LoopTerms {
-        LoopTerms { p: 0.0, i: self.integral, d: 0.0, out: self.u_prev }
+        LoopTerms {
+            p: 0.0,
+            i: self.integral,
+            d: 0.0,
+            out: self.u_prev,
+        }
     }
 
     /// Follows an output applied by someone else (manual, off, or a limit) so that a
@@ -123,14 +137,23 @@ impl Pid {
     /// measurement (y may be NaN when unknown).
     pub fn track(&mut self, r: f64, y: f64, u_applied: f64) -> LoopTerms {
         let g = self.gains;
-        let p = if r.is_finite() && y.is_finite() { g.kp * (g.setpoint_weight * r - y) } else { 0.0 };
+        let p = if r.is_finite() && y.is_finite() {
+            g.kp * (g.setpoint_weight * r - y)
+        } else {
+            0.0
+        };
         let u = u_applied.clamp(self.limits.min, self.limits.max);
         self.integral = u - p;
         self.derivative = 0.0;
         self.y_prev = y.is_finite().then_some(y);
         self.u_prev = u;
         self.limited = false;
-        LoopTerms { p, i: self.integral, d: 0.0, out: u }
+        LoopTerms {
+            p,
+            i: self.integral,
+            d: 0.0,
+            out: u,
+        }
     }
 
     /// Changes gains without a bump: the integrator absorbs the change of the
@@ -168,7 +191,10 @@ mod tests {
         }
     }
 
-    const WIDE: OutputLimits = OutputLimits { min: -1e9, max: 1e9 };
+    const WIDE: OutputLimits = OutputLimits {
+        min: -1e9,
+        max: 1e9,
+    };
 
     /// First-order plant K/(τs+1) under zero-order hold: y' = a·y + (1 − a)·K·u with
     /// a = e^{−T/τ} (Åström & Wittenmark, "Computer-Controlled Systems", ZOH sampling
@@ -180,7 +206,11 @@ mod tests {
     }
     impl Plant {
         fn new(k: f64, tau: f64, t: f64) -> Self {
-            Plant { a: (-t / tau).exp(), k, y: 0.0 }
+            Plant {
+                a: (-t / tau).exp(),
+                k,
+                y: 0.0,
+            }
         }
         fn step(&mut self, u: f64) -> f64 {
             self.y = self.a * self.y + (1.0 - self.a) * self.k * u;
@@ -202,7 +232,10 @@ mod tests {
                 y = plant.step(u);
             }
             let e = 1.0 - y;
-            assert!((e - 1.0 / (1.0 + k * kp)).abs() < 1e-9, "k={k} kp={kp} e={e}");
+            assert!(
+                (e - 1.0 / (1.0 + k * kp)).abs() < 1e-9,
+                "k={k} kp={kp} e={e}"
+            );
         }
     }
 
@@ -311,10 +344,16 @@ mod tests {
         for _ in 0..20 {
             pid.step(1.0, 1.0, 0.4);
         }
-        let before = pid.output();
+        // What the old gains would output next, against what the new gains output.
+        let mut old = pid.clone();
+        let expected = old.step(1e-9, 1.0, 0.4).out;
         pid.retune(gains(9.0, Some(10.0)), 1.0, 0.4);
         let after = pid.step(1e-9, 1.0, 0.4).out;
-        assert!((after - before).abs() < 1e-6, "{before} → {after}");
+        assert!((after - expected).abs() < 1e-6, "{expected} → {after}");
+        // And a plain P change without retune would have jumped: the test can fail.
+        let mut naive = old.clone();
+        naive.gains.kp = 9.0;
+        assert!((naive.step(1e-9, 1.0, 0.4).out - expected).abs() > 0.1);
     }
 
     #[test]

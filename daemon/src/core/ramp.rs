@@ -14,7 +14,11 @@ pub struct Ramp {
 impl Ramp {
     /// A ramp resting at `value`.
     pub fn at(value: f64, rate_per_s: f64) -> Self {
-        Ramp { value, target: value, rate_per_s }
+        Ramp {
+            value,
+            target: value,
+            rate_per_s,
+        }
     }
 
     /// Moves the value towards the target by at most `rate·dt`; returns the new value.
