@@ -38,8 +38,8 @@ pub const HARDWARE_TEMPLATE: &str = include_str!("../examples/hardware-template.
 /// `origin` names the text in error messages (usually the file's path).
 pub fn load_str(text: &str, origin: &str) -> Result<Config, ConfigErrors> {
     let spans = spans::SpanIndex::build(text, origin)?;
-    let raw = raw::parse(text, &spans)?;
-    validate::validate(raw, text, &spans)
+    let (raw, unknown_keys) = raw::parse(text, &spans)?;
+    validate::validate(raw, text, &spans, unknown_keys)
 }
 
 /// Reads, parses and validates a configuration file.

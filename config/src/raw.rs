@@ -160,8 +160,9 @@ pub struct RawSimulation {
     pub leg_spread_ratio: Option<f64>,
 }
 
-/// Deserializes the text into [`RawConfig`], collecting every unknown key.
-pub(crate) fn parse(text: &str, spans: &SpanIndex) -> Result<RawConfig, ConfigErrors> {
+/// Deserializes the text into [`RawConfig`], collecting every unknown key as an error
+/// beside the result (so validation can still report the rest).
+pub(crate) fn parse(text: &str, spans: &SpanIndex) -> Result<(RawConfig, Vec<ConfigError>), ConfigErrors> {
     let de = toml::Deserializer::parse(text).map_err(|e| {
         ConfigErrors(vec![spans.error_at(
             e.span().unwrap_or(0..0),
@@ -188,18 +189,11 @@ pub(crate) fn parse(text: &str, spans: &SpanIndex) -> Result<RawConfig, ConfigEr
             )]));
         }
     };
-    if unknown.is_empty() {
-        return Ok(raw);
-    }
     let errs: Vec<ConfigError> = unknown
         .iter()
-        .map(|p| {
-            let mut e = spans.error(p, "unknown key".into(), allowed_keys(p));
-            e.found.clear();
-            e
-        })
+        .map(|p| spans.error_at(spans.key_span_of(p), p, String::new(), "unknown key".into(), allowed_keys(p)))
         .collect();
-    Err(ConfigErrors(errs).sorted())
+    Ok((raw, errs))
 }
 
 /// serde_ignored's path → our `table.key[index]` notation.

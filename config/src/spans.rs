@@ -19,6 +19,8 @@ pub(crate) struct SpanIndex {
     text: String,
     /// path → span of its value (tables: the span toml reports for the table).
     values: HashMap<String, Range<usize>>,
+    /// path → span of its key (absent for array elements and the root).
+    keys: HashMap<String, Range<usize>>,
 }
 
 impl SpanIndex {
@@ -32,6 +34,7 @@ impl SpanIndex {
                 .collect(),
             text: text.to_string(),
             values: HashMap::new(),
+            keys: HashMap::new(),
         };
         match DeTable::parse(text) {
             Ok(table) => {
@@ -56,6 +59,7 @@ impl SpanIndex {
     fn walk_table(&mut self, prefix: &str, table: &DeTable<'_>) {
         for (k, v) in table.iter() {
             let path = join(prefix, k.get_ref());
+            self.keys.insert(path.clone(), k.span());
             self.walk_value(path, v.span(), v.get_ref());
         }
     }
@@ -97,6 +101,11 @@ impl SpanIndex {
             .min_by_key(|(p, s)| (s.end - s.start, std::cmp::Reverse(p.len())))
             .map(|(p, _)| p.clone())
             .unwrap_or_default()
+    }
+
+    /// The span of the key itself at `path` (falls back to [`SpanIndex::span_of`]).
+    pub(crate) fn key_span_of(&self, path: &str) -> Range<usize> {
+        self.keys.get(path).cloned().unwrap_or_else(|| self.span_of(path))
     }
 
     /// The text of the value at `path`, shortened for messages.

@@ -80,6 +80,13 @@ impl<'a> V<'a> {
         self.errors.push(e);
     }
 
+    /// An error about a whole table or array, where echoing the value would not help.
+    fn err_table(&mut self, path: &str, problem: impl Into<String>, allowed: impl Into<String>) {
+        let mut e = self.spans.error(path, problem.into(), allowed.into());
+        e.found.clear();
+        self.errors.push(e);
+    }
+
     fn missing(&mut self, path: &str, allowed: &str) {
         let mut e = self
             .spans
@@ -139,10 +146,11 @@ pub(crate) fn validate(
     raw: RawConfig,
     text: &str,
     spans: &SpanIndex,
+    earlier: Vec<ConfigError>,
 ) -> Result<Config, ConfigErrors> {
     let mut v = V {
         spans,
-        errors: Vec::new(),
+        errors: earlier,
     };
     let stage_name = raw
         .stage
@@ -262,7 +270,7 @@ pub(crate) fn validate(
 
 fn legs(v: &mut V<'_>, raw: Vec<RawLeg>) -> Option<Vec<Leg>> {
     if raw.len() < 3 {
-        v.err(
+        v.err_table(
             "legs",
             format!(
                 "{} leg(s) given; a plate needs at least three to define its tilt",
@@ -399,7 +407,7 @@ fn legs(v: &mut V<'_>, raw: Vec<RawLeg>) -> Option<Vec<Leg>> {
     let det = sxx * syy - sxy * sxy;
     let scale = (sxx + syy).powi(2);
     if !(det > 1e-6 * scale && scale > 1e-12) {
-        v.err(
+        v.err_table(
             "legs",
             "the legs lie on (or very near) one line, so the plate's tilt about that line cannot be controlled",
             "leg positions spanning a plane, e.g. three legs 120° apart",
