@@ -162,7 +162,10 @@ pub struct RawSimulation {
 
 /// Deserializes the text into [`RawConfig`], collecting every unknown key as an error
 /// beside the result (so validation can still report the rest).
-pub(crate) fn parse(text: &str, spans: &SpanIndex) -> Result<(RawConfig, Vec<ConfigError>), ConfigErrors> {
+pub(crate) fn parse(
+    text: &str,
+    spans: &SpanIndex,
+) -> Result<(RawConfig, Vec<ConfigError>), ConfigErrors> {
     let de = toml::Deserializer::parse(text).map_err(|e| {
         ConfigErrors(vec![spans.error_at(
             e.span().unwrap_or(0..0),
@@ -191,7 +194,15 @@ pub(crate) fn parse(text: &str, spans: &SpanIndex) -> Result<(RawConfig, Vec<Con
     };
     let errs: Vec<ConfigError> = unknown
         .iter()
-        .map(|p| spans.error_at(spans.key_span_of(p), p, String::new(), "unknown key".into(), allowed_keys(p)))
+        .map(|p| {
+            spans.error_at(
+                spans.key_span_of(p),
+                p,
+                String::new(),
+                "unknown key".into(),
+                allowed_keys(p),
+            )
+        })
         .collect();
     Ok((raw, errs))
 }

@@ -105,7 +105,10 @@ impl SpanIndex {
 
     /// The span of the key itself at `path` (falls back to [`SpanIndex::span_of`]).
     pub(crate) fn key_span_of(&self, path: &str) -> Range<usize> {
-        self.keys.get(path).cloned().unwrap_or_else(|| self.span_of(path))
+        self.keys
+            .get(path)
+            .cloned()
+            .unwrap_or_else(|| self.span_of(path))
     }
 
     /// The text of the value at `path`, shortened for messages.

@@ -6,13 +6,18 @@ use stilt_config::{ConfigError, DEMO_SCENARIO, HARDWARE_TEMPLATE, load_str};
 
 /// Replaces the `nth` (0-based) occurrence of `from` with `to`.
 fn edit(text: &str, from: &str, to: &str, nth: usize) -> String {
-    let (i, _) = text.match_indices(from).nth(nth).unwrap_or_else(|| panic!("`{from}` #{nth} not in text"));
+    let (i, _) = text
+        .match_indices(from)
+        .nth(nth)
+        .unwrap_or_else(|| panic!("`{from}` #{nth} not in text"));
     format!("{}{}{}", &text[..i], to, &text[i + from.len()..])
 }
 
 /// 1-based line and column of the first occurrence of `needle`.
 fn pos(text: &str, needle: &str) -> (usize, usize) {
-    let i = text.find(needle).unwrap_or_else(|| panic!("`{needle}` not in text"));
+    let i = text
+        .find(needle)
+        .unwrap_or_else(|| panic!("`{needle}` not in text"));
     let line = text[..i].matches('\n').count() + 1;
     let col = text[..i].rsplit('\n').next().unwrap().chars().count() + 1;
     (line, col)
@@ -46,24 +51,40 @@ fn out_of_range_value_names_path_position_value_and_range() {
     let errs = errors(&t);
     let e = find(&errs, "legs[1].length_m");
     // The value's position: the `-0.30` on the second leg's line.
-    let (line, _) = pos(&edit(DEMO_SCENARIO, "length_m = 0.30", "length_m = @@", 1), "@@");
+    let (line, _) = pos(
+        &edit(DEMO_SCENARIO, "length_m = 0.30", "length_m = @@", 1),
+        "@@",
+    );
     assert_eq!(e.line, line);
     assert_eq!(e.column, "length_m = ".len() + 1);
     assert_eq!(e.found, "-0.30");
     assert!(e.allowed.contains("> 0"), "{}", e.allowed);
     let shown = e.to_string();
-    assert!(shown.starts_with(&format!("case.toml:{line}:12: `legs[1].length_m` = -0.30")), "{shown}");
+    assert!(
+        shown.starts_with(&format!("case.toml:{line}:12: `legs[1].length_m` = -0.30")),
+        "{shown}"
+    );
 }
 
 #[test]
 fn errors_are_collected_not_stopped_at_the_first() {
-    let mut t = edit(DEMO_SCENARIO, "heater_resistance_ohm = 50.0", "heater_resistance_ohm = 0.0", 0);
+    let mut t = edit(
+        DEMO_SCENARIO,
+        "heater_resistance_ohm = 50.0",
+        "heater_resistance_ohm = 0.0",
+        0,
+    );
     t = edit(&t, "rate_hz = 1.0", "rate_hz = 0.0", 0);
     t = edit(&t, "mode = \"level\"", "mode = \"levelling\"", 0);
     t = edit(&t, "flush_interval_s = 5.0", "flush_interval_s = 60.0", 0);
     let errs = errors(&t);
     let paths: Vec<&str> = errs.iter().map(|e| e.path.as_str()).collect();
-    for p in ["legs[0].heater_resistance_ohm", "control.rate_hz", "control.mode", "recording.flush_interval_s"] {
+    for p in [
+        "legs[0].heater_resistance_ohm",
+        "control.rate_hz",
+        "control.mode",
+        "recording.flush_interval_s",
+    ] {
         assert!(paths.contains(&p), "{p} missing from {paths:?}");
     }
     // In file order.
@@ -71,14 +92,23 @@ fn errors_are_collected_not_stopped_at_the_first() {
     let mut sorted = lines.clone();
     sorted.sort();
     assert_eq!(lines, sorted);
-    assert!(find(&errs, "control.mode").allowed.contains("\"temperature\""));
+    assert!(
+        find(&errs, "control.mode")
+            .allowed
+            .contains("\"temperature\"")
+    );
 }
 
 #[test]
 fn every_unknown_key_is_reported_with_the_allowed_ones() {
     let mut t = edit(DEMO_SCENARIO, "length_m = 0.30", "lenght_m = 0.30", 2);
     t = edit(&t, "[network]", "[network]\nport = 8040", 0);
-    t = edit(&t, "range_urad = 500.0", "range_urad = 500.0\nrange_mrad = 0.5", 0);
+    t = edit(
+        &t,
+        "range_urad = 500.0",
+        "range_urad = 500.0\nrange_mrad = 0.5",
+        0,
+    );
     let errs = errors(&t);
     let e = find(&errs, "legs[2].lenght_m");
     assert_eq!((e.line, e.column), pos(&t, "lenght_m"));
@@ -102,7 +132,12 @@ fn missing_required_key_points_at_its_table() {
 
 #[test]
 fn wrong_type_is_located() {
-    let t = edit(DEMO_SCENARIO, "heater_max_power_w = 2.0", "heater_max_power_w = \"2 W\"", 2);
+    let t = edit(
+        DEMO_SCENARIO,
+        "heater_max_power_w = 2.0",
+        "heater_max_power_w = \"2 W\"",
+        2,
+    );
     let errs = errors(&t);
     assert_eq!(errs.len(), 1);
     let e = &errs[0];
@@ -133,7 +168,11 @@ fn too_few_legs_duplicate_names_and_channels() {
     let i = DEMO_SCENARIO.match_indices("[[legs]]").nth(2).unwrap().0;
     let j = DEMO_SCENARIO.find("[tiltmeter]").unwrap();
     let two = format!("{}{}", &DEMO_SCENARIO[..i], &DEMO_SCENARIO[j..]);
-    assert!(find(&errors(&two), "legs").problem.contains("at least three"));
+    assert!(
+        find(&errors(&two), "legs")
+            .problem
+            .contains("at least three")
+    );
     let mut t = edit(DEMO_SCENARIO, "name = \"B\"", "name = \"A\"", 0);
     t = edit(&t, "thermometer_channel = 2", "thermometer_channel = 0", 0);
     let errs = errors(&t);
@@ -146,15 +185,29 @@ fn cross_section_rules() {
     // Tiltmeter rate must be a whole multiple of the control rate.
     let t = edit(DEMO_SCENARIO, "rate_hz = 10.0", "rate_hz = 2.5", 0);
     let t = edit(&t, "rate_hz = 1.0", "rate_hz = 2.0", 0);
-    assert!(find(&errors(&t), "tiltmeter.rate_hz").problem.contains("whole multiple"));
+    assert!(
+        find(&errors(&t), "tiltmeter.rate_hz")
+            .problem
+            .contains("whole multiple")
+    );
     // Leg bias above the temperature limit.
     let t = edit(DEMO_SCENARIO, "leg_bias_c = 24.0", "leg_bias_c = 36.0", 0);
     find(&errors(&t), "control.leg_bias_c");
     // Setpoint outside the tilt range.
-    let t = edit(DEMO_SCENARIO, "setpoint_x_urad = 0.0", "setpoint_x_urad = 451.0", 0);
+    let t = edit(
+        DEMO_SCENARIO,
+        "setpoint_x_urad = 0.0",
+        "setpoint_x_urad = 451.0",
+        0,
+    );
     find(&errors(&t), "control.setpoint_x_urad");
     // Manual power above a heater's maximum.
-    let t = edit(DEMO_SCENARIO, "manual_power_w = 1.0", "manual_power_w = 2.5", 0);
+    let t = edit(
+        DEMO_SCENARIO,
+        "manual_power_w = 1.0",
+        "manual_power_w = 2.5",
+        0,
+    );
     find(&errors(&t), "control.manual_power_w");
 }
 
@@ -164,8 +217,17 @@ fn non_finite_and_bad_addresses() {
     assert!(find(&errors(&t), "legs[0].x_m").problem.contains("finite"));
     let t = edit(DEMO_SCENARIO, "leg_bias_c = 24.0", "leg_bias_c = inf", 0);
     find(&errors(&t), "control.leg_bias_c");
-    let t = edit(DEMO_SCENARIO, "bind = \"127.0.0.1:8040\"", "bind = \"localhost\"", 0);
-    assert!(find(&errors(&t), "network.bind").allowed.contains("IP:port"));
+    let t = edit(
+        DEMO_SCENARIO,
+        "bind = \"127.0.0.1:8040\"",
+        "bind = \"localhost\"",
+        0,
+    );
+    assert!(
+        find(&errors(&t), "network.bind")
+            .allowed
+            .contains("IP:port")
+    );
 }
 
 #[test]
@@ -176,7 +238,12 @@ fn material_table_matches_the_crc_handbook() {
     // values and vary with treatment; they are checked only for their order of magnitude.
     let table = stilt_config::MATERIALS;
     let get = |n: &str| table.iter().find(|(m, _)| *m == n).unwrap().1;
-    for (n, v) in [("aluminium", 23.1), ("copper", 16.5), ("iron", 11.8), ("titanium", 8.6)] {
+    for (n, v) in [
+        ("aluminium", 23.1),
+        ("copper", 16.5),
+        ("iron", 11.8),
+        ("titanium", 8.6),
+    ] {
         assert!((get(n) * 1e6 - v).abs() < 1e-9, "{n}");
     }
     assert!((15.0..19.0).contains(&(get("stainless_304") * 1e6)));

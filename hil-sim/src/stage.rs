@@ -192,7 +192,7 @@ impl SimStage {
             if self.tilt_quantum_urad > 0.0 {
                 v = (v / self.tilt_quantum_urad).round() * self.tilt_quantum_urad;
             }
-            if !(v.abs() <= self.tilt_range_urad) {
+            if v.is_nan() || v.abs() > self.tilt_range_urad {
                 in_range = false;
                 v = if v.is_nan() {
                     0.0

@@ -10,7 +10,10 @@ use std::sync::Once;
 
 /// The repository root.
 pub fn workspace() -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).parent().map(Path::to_path_buf).unwrap_or_default()
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .parent()
+        .map(Path::to_path_buf)
+        .unwrap_or_default()
 }
 
 static BUILD: Once = Once::new();
@@ -19,13 +22,18 @@ static BUILD: Once = Once::new();
 pub fn bin(name: &str) -> PathBuf {
     let exe = std::env::current_exe().expect("test executable path");
     // target/<profile>/deps/<test> → target/<profile>/<name>
-    let dir = exe.parent().and_then(Path::parent).expect("target dir").to_path_buf();
+    let dir = exe
+        .parent()
+        .and_then(Path::parent)
+        .expect("target dir")
+        .to_path_buf();
     let path = dir.join(name);
     if !path.exists() {
         BUILD.call_once(|| {
             let release = dir.ends_with("release");
             let mut c = Command::new(env!("CARGO"));
-            c.current_dir(workspace()).args(["build", "-p", "stilt-daemon", "--bins"]);
+            c.current_dir(workspace())
+                .args(["build", "-p", "stilt-daemon", "--bins"]);
             if release {
                 c.arg("--release");
             }

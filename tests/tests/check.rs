@@ -10,10 +10,22 @@ fn every_shipped_example_config_passes() {
     for e in std::fs::read_dir(&dir).unwrap() {
         let p = e.unwrap().path();
         if p.extension().is_some_and(|x| x == "toml") {
-            let out = command("stiltd", &dir).args(["check", "--config"]).arg(&p).output().unwrap();
+            let out = command("stiltd", &dir)
+                .args(["check", "--config"])
+                .arg(&p)
+                .output()
+                .unwrap();
             let stdout = String::from_utf8_lossy(&out.stdout);
-            assert!(out.status.success(), "{}: {}", p.display(), String::from_utf8_lossy(&out.stderr));
-            assert!(stdout.contains("legs (3):") && stdout.contains(": OK"), "{stdout}");
+            assert!(
+                out.status.success(),
+                "{}: {}",
+                p.display(),
+                String::from_utf8_lossy(&out.stderr)
+            );
+            assert!(
+                stdout.contains("legs (3):") && stdout.contains(": OK"),
+                "{stdout}"
+            );
             n += 1;
         }
     }
@@ -31,8 +43,15 @@ fn every_broken_config_gives_its_precise_error() {
     }
     assert!(by_file.len() >= 8);
     for (file, lines) in by_file {
-        let out = command("stiltd", &dir).args(["check", "--config", file]).output().unwrap();
-        assert_eq!(out.status.code(), Some(2), "{file} must be refused with exit code 2");
+        let out = command("stiltd", &dir)
+            .args(["check", "--config", file])
+            .output()
+            .unwrap();
+        assert_eq!(
+            out.status.code(),
+            Some(2),
+            "{file} must be refused with exit code 2"
+        );
         let stderr = String::from_utf8_lossy(&out.stderr);
         for l in &lines {
             assert!(stderr.contains(l), "{file}: expected\n  {l}\nin\n{stderr}");
@@ -45,8 +64,14 @@ fn every_broken_config_gives_its_precise_error() {
 
 #[test]
 fn a_missing_file_is_a_clear_error() {
-    let out = command("stiltd", &workspace()).args(["check", "--config", "no/such/file.toml"]).output().unwrap();
+    let out = command("stiltd", &workspace())
+        .args(["check", "--config", "no/such/file.toml"])
+        .output()
+        .unwrap();
     assert_eq!(out.status.code(), Some(2));
     let stderr = String::from_utf8_lossy(&out.stderr);
-    assert!(stderr.contains("no/such/file.toml") && stderr.contains("cannot read"), "{stderr}");
+    assert!(
+        stderr.contains("no/such/file.toml") && stderr.contains("cannot read"),
+        "{stderr}"
+    );
 }

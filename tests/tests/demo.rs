@@ -9,7 +9,11 @@ fn demo_36h_at_max_speed_meets_the_levelling_targets() {
         .args(["demo", "--speed", "max", "--duration", "36h", "--json"])
         .output()
         .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let s: serde_json::Value = serde_json::from_slice(&out.stdout).expect("one JSON object");
     assert_eq!(s["duration_s"], 129_600.0);
     assert_eq!(s["out_of_range_commands"], 0);
@@ -39,7 +43,10 @@ fn bad_arguments_are_refused_with_what_is_allowed() {
 #[test]
 fn the_table_summary_names_what_a_lab_user_needs() {
     let dir = scratch("demo-table");
-    let out = command("stiltd", &dir).args(["demo", "--duration", "8h", "--settle", "2h"]).output().unwrap();
+    let out = command("stiltd", &dir)
+        .args(["demo", "--duration", "8h", "--settle", "2h"])
+        .output()
+        .unwrap();
     assert!(out.status.success());
     let t = String::from_utf8_lossy(&out.stdout);
     for needle in [
@@ -60,11 +67,24 @@ fn a_paced_run_advances_with_the_wall_clock() {
     let dir = scratch("demo-paced");
     let t0 = std::time::Instant::now();
     let out = command("stiltd", &dir)
-        .args(["demo", "--speed", "600", "--duration", "10m", "--settle", "5m", "--json"])
+        .args([
+            "demo",
+            "--speed",
+            "600",
+            "--duration",
+            "10m",
+            "--settle",
+            "5m",
+            "--json",
+        ])
         .output()
         .unwrap();
     let wall = t0.elapsed().as_secs_f64();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let s: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert_eq!(s["ticks"], 600);
     // Paced, not virtual: it cannot finish much faster than 1 s (loose bound, shared machine).

@@ -80,7 +80,7 @@ impl Pid {
     /// false (conditional integration, used when a loop downstream is saturated).
     pub fn step_with(&mut self, h: f64, r: f64, y: f64, integrate: bool) -> LoopTerms {
         let g = self.gains;
-        if !(h > 0.0) || !r.is_finite() || !y.is_finite() {
+        if h.is_nan() || h <= 0.0 || !r.is_finite() || !y.is_finite() {
             // Nothing sensible to do: hold the output.
             return self.hold_terms();
         }
