@@ -23,4 +23,8 @@
 //! panic and never hold more than a documented, bounded number of bytes.
 
 pub mod convert;
+pub mod line;
+pub mod modbus;
+pub mod scpi;
+pub mod session;
 pub mod text;
