@@ -8,13 +8,17 @@
 //!   spectral density ([`psd::Spectrum`]).
 //! - [`allan`]: overlapping and modified Allan deviation over octave-spaced averaging times, streamed
 //!   with bounded memory ([`allan::AllanAccumulator`]).
+//! - [`fopdt`]: first-order-plus-dead-time fit to a step response ([`fopdt::fit_step`]).
+//! - [`tuning`]: SIMC and Ziegler–Nichols tuning rules, relay-test evaluation ([`tuning::relay_estimate`]).
 //!
 //! Every fallible function returns [`AnalysisError`]; no input (empty slices, NaN, mismatched lengths)
 //! makes any of them panic.
 
 pub mod allan;
+pub mod fopdt;
 pub mod psd;
 pub mod stats;
+pub mod tuning;
 
 /// Why an analysis could not be computed. Each variant names what was wrong and what is allowed.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
