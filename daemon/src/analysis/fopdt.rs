@@ -191,6 +191,11 @@ fn prepare<'a>(test: &StepTest<'a>) -> Result<Prepared<'a>, AnalysisError> {
     let tail = (after / 10).max(3);
     let final_value = y[y.len() - tail..].iter().sum::<f64>() / tail as f64;
     let change = final_value - baseline;
+    if !(change.is_finite() && baseline_sd.is_finite()) {
+        return Err(AnalysisError::Degenerate(format!(
+            "step test output too large to analyse: baseline {baseline}, final value {final_value}"
+        )));
+    }
     // A change within 5 baseline standard deviations (or within rounding) is no visible step.
     let floor = (5.0 * baseline_sd).max(1e-12 * baseline.abs().max(final_value.abs()));
     if change.abs() <= floor {
@@ -395,7 +400,8 @@ pub fn fit_step(test: &StepTest<'_>) -> Result<FopdtFit, AnalysisError> {
             }
         }
     }
-    if !converged {
+    let finite = q.iter().all(|v| v.is_finite()) && cost.is_finite();
+    if !converged || !finite {
         return Err(AnalysisError::NoConvergence {
             iterations,
             reason: format!(

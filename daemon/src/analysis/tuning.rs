@@ -420,8 +420,14 @@ pub fn relay_estimate(
             allowed: "less than the output oscillation amplitude",
         });
     }
+    let ku = 4.0 * d / (std::f64::consts::PI * (a * a - hysteresis * hysteresis).sqrt());
+    if !(ku.is_finite() && period.is_finite() && period > 0.0) {
+        return Err(AnalysisError::Degenerate(format!(
+            "relay test: values out of range (amplitude {a}, relay {d}, period {period} s)"
+        )));
+    }
     Ok(RelayEstimate {
-        ultimate_gain: 4.0 * d / (std::f64::consts::PI * (a * a - hysteresis * hysteresis).sqrt()),
+        ultimate_gain: ku,
         ultimate_period_s: period,
         relay_amplitude: d,
         output_amplitude: a,
