@@ -205,7 +205,8 @@ impl AllanAccumulator {
             });
         }
         let cap = 3 * m as usize + 1;
-        let mut ring = VecDeque::with_capacity(cap);
+        // Grown on demand: a large max_exact_m costs memory only once the series is that long.
+        let mut ring = VecDeque::with_capacity(cap.min(1024));
         ring.push_back((Dd::default(), Dd::default()));
         Ok(Self {
             config,

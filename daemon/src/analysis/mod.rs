@@ -8,13 +8,17 @@
 //!   spectral density ([`psd::Spectrum`]).
 //! - [`allan`]: overlapping and modified Allan deviation over octave-spaced averaging times, streamed
 //!   with bounded memory ([`allan::AllanAccumulator`]).
+//! - [`fopdt`]: first-order-plus-dead-time fit to a step response ([`fopdt::fit_step`]).
+//! - [`tuning`]: SIMC and Ziegler–Nichols tuning rules, relay-test evaluation ([`tuning::relay_estimate`]).
 //!
 //! Every fallible function returns [`AnalysisError`]; no input (empty slices, NaN, mismatched lengths)
 //! makes any of them panic.
 
 pub mod allan;
+pub mod fopdt;
 pub mod psd;
 pub mod stats;
+pub mod tuning;
 
 /// Why an analysis could not be computed. Each variant names what was wrong and what is allowed.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -151,5 +155,58 @@ pub(crate) mod test_util {
             n = (16807 * n) % 2_147_483_647;
         }
         out
+    }
+}
+
+#[cfg(test)]
+mod never_panic {
+    //! Arbitrary input (NaN, infinities, huge values, short or empty slices) gives Ok or Err, never a
+    //! panic.
+
+    use super::*;
+    use proptest::prelude::*;
+
+    fn any_series() -> impl Strategy<Value = Vec<f64>> {
+        prop::collection::vec(
+            prop_oneof![
+                4 => -1e3..1e3f64,
+                1 => Just(f64::NAN),
+                1 => Just(f64::INFINITY),
+                1 => prop::num::f64::ANY,
+                1 => Just(1e300),
+            ],
+            0..200,
+        )
+    }
+
+    proptest! {
+        #[test]
+        fn analysis_functions_do_not_panic(
+            y in any_series(),
+            t in any_series(),
+            step in -10.0..300.0f64,
+            n in 0usize..80,
+        ) {
+            let mut s = stats::Summary::new();
+            let _ = s.extend(&y);
+            let _ = (s.rms(), s.std_dev(), s.peak_to_peak());
+            let mut r = stats::LinearRegression::new();
+            let _ = r.extend(&t, &y);
+            let _ = r.fit();
+            let cfg = psd::WelchConfig { sample_rate_hz: 10.0, segment_len: n, detrend: psd::Detrend::Linear };
+            let _ = psd::welch(&y, cfg);
+            if let Ok(mut a) = allan::AllanAccumulator::new(allan::AllanConfig { tau0_s: 0.1, max_exact_m: 4 }) {
+                let _ = a.push(&y);
+                let _ = a.results();
+            }
+            let _ = allan::overlapping_adev(&y, 1.0, n as u64);
+            let _ = allan::modified_adev(&y, 1.0, n as u64);
+            let times: Vec<f64> = (0..y.len()).map(|i| i as f64).collect();
+            let test = fopdt::StepTest { time_s: &times, output: &y, step_time_s: step, input_step: 1.0 };
+            let _ = fopdt::fit_step(&test);
+            let _ = fopdt::fit_step(&fopdt::StepTest { time_s: &t, ..test });
+            let _ = tuning::relay_estimate(&times, &y, &y, 0.0, n);
+            let _ = tuning::relay_estimate(&t, &y, &y, 0.0, 0);
+        }
     }
 }

@@ -25,8 +25,9 @@ use realfft::{RealFftPlanner, RealToComplex};
 
 use super::{AnalysisError, check_finite, check_positive};
 
-/// Largest accepted segment length (2^26 samples, 512 MiB of f64 buffers would be absurd already).
-pub const MAX_SEGMENT_LEN: usize = 1 << 26;
+/// Largest accepted segment length: 2^22 samples (at 10 Hz a resolution of 2.4 µHz, five days per
+/// segment); the buffers then take about 100 MiB.
+pub const MAX_SEGMENT_LEN: usize = 1 << 22;
 
 /// How each segment is detrended before windowing.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -120,7 +121,7 @@ impl Welch {
             return Err(AnalysisError::InvalidParameter {
                 name: "segment_len",
                 value: n as f64,
-                allowed: "an integer from 2 to 67108864 (2^26) samples",
+                allowed: "an integer from 2 to 4194304 (2^22) samples",
             });
         }
         let fft = RealFftPlanner::<f64>::new().plan_fft_forward(n);
