@@ -10,6 +10,7 @@
 //! The binaries (`src/bin/`) are thin: they parse the command line and call into here.
 
 pub mod analysis;
+pub mod cmd;
 pub mod core;
 pub mod demo;
 pub mod pipeline;
