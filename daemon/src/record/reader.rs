@@ -7,7 +7,8 @@
 //!
 //! Every file is opened in SWMR read mode, which also works on closed segments and on
 //! segments whose writer died; datasets are refreshed when a segment is opened, so a
-//! live segment yields the rows flushed up to that moment. Memory stays bounded by the
+//! live segment yields the rows of its last flush (rows are read up to the counts in
+//! `segment_state`, which the writer updates at every flush and at close). Memory stays bounded by the
 //! chunk size (4096 rows by default) whatever the length of the run.
 
 use std::io::Write;
@@ -333,6 +334,23 @@ impl Cursor {
                 source,
             }
         };
+        // segment_state first: the writer updates it after the rows it counts were
+        // flushed, so the datasets refreshed next hold at least that many rows. Rows past
+        // that count are not trusted: after a failed write (a full disk) the extent may
+        // have grown without its data reaching the file (the fill value, zeros, shows).
+        let st = file
+            .dataset(DS_STATE)
+            .and_then(|d| {
+                d.refresh()?;
+                d.read_raw::<StateWire>()
+            })
+            .map_err(e("read segment_state"))?;
+        let st = st.first().copied().unwrap_or_default();
+        let counted = match self.ds {
+            DS_TILT => st.tilt_rows,
+            DS_CONTROL => st.control_rows,
+            _ => st.event_rows,
+        };
         let ds = file
             .dataset(self.ds)
             .map_err(e(&format!("open dataset {}", self.ds)))?;
@@ -340,6 +358,7 @@ impl Cursor {
         // opposite order, so every control row seen here has its legs.
         ds.refresh().map_err(e("refresh"))?;
         let mut len = ds.shape().first().copied().unwrap_or(0);
+        len = len.min(usize::try_from(counted).unwrap_or(usize::MAX));
         let mut legs = 0;
         let extra = match self.extra {
             Some(name) => {

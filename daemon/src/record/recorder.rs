@@ -17,7 +17,7 @@
 
 use std::collections::VecDeque;
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::atomic::{AtomicU64, AtomicUsize, Ordering};
 use std::sync::mpsc::{self, Receiver, RecvTimeoutError, SyncSender, TryRecvError, TrySendError};
 use std::sync::{Arc, Mutex};
 use std::thread::JoinHandle;
@@ -169,6 +169,8 @@ struct Health {
     dropped_rows: AtomicU64,
     flushes: AtomicU64,
     flushed: [AtomicU64; 3],
+    /// Rows sent by the sink and not yet taken by the writer (bounds the queue in rows).
+    in_flight: AtomicUsize,
     text: Mutex<HealthText>,
 }
 
@@ -276,6 +278,9 @@ impl Batch {
 
 enum Msg {
     Rows(Batch),
+    /// Rows the sink dropped; the writer records the event (or, while it cannot write,
+    /// adds them to its own report, so that the report itself is never dropped).
+    Dropped(Drops, Stamp),
     Finish,
 }
 
@@ -367,7 +372,14 @@ impl Recorder {
             leg_names: cfg.legs.iter().map(|l| l.name.clone()).collect(),
         };
         let health = Arc::new(Health::default());
-        let cap_batches = (opts.queue_capacity_rows / opts.batch_rows).max(2);
+        // Non-blocking: the queue is bounded in rows by `Health::in_flight`; the message
+        // bound only needs to be large enough not to bind first. Blocking: the message
+        // bound is the back-pressure.
+        let cap_batches = if opts.blocking {
+            (opts.queue_capacity_rows / opts.batch_rows).max(2)
+        } else {
+            opts.queue_capacity_rows.clamp(2, 4096)
+        };
         let (tx, rx) = mpsc::sync_channel::<Msg>(cap_batches);
         let (ready_tx, ready_rx) = mpsc::sync_channel::<Result<(), RecordError>>(1);
         let h = health.clone();
@@ -520,15 +532,9 @@ impl RecorderSink {
         self.drain_backlog();
         if self.backlog.is_empty() {
             if self.unreported.total() > 0 {
-                let ev = self
-                    .unreported
-                    .event(self.last_stamp, "the recorder queue was full");
-                let sent = self.try_send(Batch {
-                    events: vec![ev],
-                    ..Batch::default()
-                });
+                let msg = Msg::Dropped(self.unreported, self.last_stamp);
                 // Still full: keep counting and report with a later batch.
-                if sent.is_ok() {
+                if self.tx.as_ref().is_some_and(|tx| tx.try_send(msg).is_ok()) {
                     self.unreported = Drops::default();
                 }
             }
@@ -546,10 +552,19 @@ impl RecorderSink {
             self.lost_writer(b.counts());
             return Ok(());
         };
+        // Counted before the send, so that the writer's decrement never comes first.
+        let n = b.len();
+        if self.health.in_flight.fetch_add(n, Ordering::AcqRel) + n > self.cap_rows {
+            self.health.in_flight.fetch_sub(n, Ordering::AcqRel);
+            return Err(b);
+        }
         match tx.try_send(Msg::Rows(b)) {
             Ok(()) => Ok(()),
-            Err(TrySendError::Full(Msg::Rows(b))) => Err(b),
-            Err(TrySendError::Full(Msg::Finish)) => Ok(()),
+            Err(TrySendError::Full(Msg::Rows(b))) => {
+                self.health.in_flight.fetch_sub(n, Ordering::AcqRel);
+                Err(b)
+            }
+            Err(TrySendError::Full(_)) => Ok(()), // only row batches are sent here
             Err(TrySendError::Disconnected(m)) => {
                 if let Msg::Rows(b) = m {
                     self.lost_writer(b.counts());
@@ -565,6 +580,9 @@ impl RecorderSink {
             self.lost_writer(b.counts());
             return;
         };
+        if !self.blocking {
+            self.health.in_flight.fetch_add(b.len(), Ordering::AcqRel);
+        }
         if let Err(mpsc::SendError(m)) = tx.send(Msg::Rows(b)) {
             if let Msg::Rows(b) = m {
                 self.lost_writer(b.counts());
@@ -606,14 +624,10 @@ impl RecorderSink {
         }
         self.backlog_rows = 0;
         if self.unreported.total() > 0 {
-            let ev = self
-                .unreported
-                .event(self.last_stamp, "the recorder queue was full");
+            if let Some(tx) = &self.tx {
+                let _ = tx.send(Msg::Dropped(self.unreported, self.last_stamp));
+            }
             self.unreported = Drops::default();
-            self.send_blocking(Batch {
-                events: vec![ev],
-                ..Batch::default()
-            });
         }
         if !cur.is_empty() {
             self.send_blocking(cur);
@@ -704,6 +718,9 @@ struct Writer {
     unreported: Drops,
     last_stamp: Stamp,
     files: Vec<PathBuf>,
+    /// Segments whose close failed, kept open (see `SegmentWriter::close`); closed once
+    /// a flush succeeds again.
+    graveyard: Vec<Box<SegmentWriter>>,
 }
 
 impl Writer {
@@ -733,6 +750,7 @@ impl Writer {
             flush_due,
             unreported: Drops::default(),
             last_stamp,
+            graveyard: Vec::new(),
         }
     }
 
@@ -746,12 +764,14 @@ impl Writer {
             };
             let msg = rx.recv_timeout(deadline.saturating_duration_since(now));
             match msg {
+                Ok(Msg::Dropped(d, at)) => self.sink_dropped(d, at),
                 Ok(Msg::Rows(b)) => {
                     self.accept(b);
                     // Take whatever else is queued before looking at the clock again.
                     loop {
                         match rx.try_recv() {
                             Ok(Msg::Rows(b)) => self.accept(b),
+                            Ok(Msg::Dropped(d, at)) => self.sink_dropped(d, at),
                             Ok(Msg::Finish) | Err(TryRecvError::Disconnected) => {
                                 return self.finish();
                             }
@@ -780,6 +800,10 @@ impl Writer {
     }
 
     fn accept(&mut self, b: Batch) {
+        if !self.opts.blocking {
+            let n = b.len();
+            self.health.in_flight.fetch_sub(n, Ordering::AcqRel);
+        }
         let Some((lo, hi)) = b.span() else { return };
         if self.seg.is_some() && lo.t_mono_s - self.seg_start_mono >= self.opts.segment_duration_s {
             self.rotate(lo, "segment duration reached");
@@ -804,6 +828,16 @@ impl Writer {
                 return;
             }
             self.check_size();
+        }
+    }
+
+    fn sink_dropped(&mut self, d: Drops, at: Stamp) {
+        if self.failed.is_some() {
+            self.unreported.add(d);
+        } else {
+            self.pend
+                .events
+                .push(d.event(at, "the recorder queue was full"));
         }
     }
 
@@ -950,8 +984,9 @@ impl Writer {
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default();
-        if let Err(e) = old.close(dropped) {
-            self.fail(e);
+        if let Err(c) = old.close(dropped) {
+            self.seg = c.segment.map(|b| *b);
+            self.fail(c.error);
             return;
         }
         self.health.mark_flushed();
@@ -982,13 +1017,13 @@ impl Writer {
 
     /// Recording stops: alarm, keep rows up to the bound, retry later with a new segment.
     fn fail(&mut self, e: RecordError) {
-        let text = e.to_string();
+        let text = e.to_string().replace('\n', " ");
         if let Some(seg) = self.seg.take() {
-            // Best effort: a segment that hit an error is closed if HDF5 still can.
-            let _ = seg.close(self.dropped_run());
+            // Kept open, not closed: see `SegmentWriter::close`. `retry` closes it later.
+            self.graveyard.push(Box::new(seg));
         }
         let alarm = format!(
-            "recording stopped: {text}; retrying every {:.0} s with a new segment; holding at most {} rows, dropping the rest",
+            "recording stopped: {text}; retrying every {:.1} s with a new segment; holding at most {} rows, dropping the rest",
             self.opts.retry_interval.as_secs_f64(),
             self.opts.queue_capacity_rows
         );
@@ -1005,10 +1040,26 @@ impl Writer {
         self.hold_bounded(pend);
     }
 
+    /// Tries to close the segments that failed earlier; keeps those that still fail.
+    fn bury(&mut self) {
+        let dropped = self.dropped_run();
+        for seg in std::mem::take(&mut self.graveyard) {
+            match seg.close(dropped) {
+                Ok(_) => {}
+                Err(c) => {
+                    if let Some(s) = c.segment {
+                        self.graveyard.push(s);
+                    }
+                }
+            }
+        }
+    }
+
     fn retry(&mut self) {
         let Some(err) = self.failed.clone() else {
             return;
         };
+        self.bury();
         match self.open_next(self.last_stamp) {
             Ok(seg) => {
                 let name = seg.path().display().to_string();
@@ -1051,7 +1102,10 @@ impl Writer {
             if let Some(seg) = self.seg.take() {
                 match seg.close(self.dropped_run()) {
                     Ok(_) => self.health.mark_flushed(),
-                    Err(e) => error = Some(e.to_string()),
+                    Err(c) => {
+                        error = Some(c.error.to_string());
+                        self.graveyard.extend(c.segment);
+                    }
                 }
             }
         } else {
@@ -1063,6 +1117,12 @@ impl Writer {
                 .failed
                 .clone()
                 .map(|f| format!("{f}; {} held rows could not be written", n.total()));
+        }
+        self.bury();
+        // Still failing: leave those handles to the process's end rather than risk
+        // dangling HDF5 ids (see `SegmentWriter::close`).
+        for seg in std::mem::take(&mut self.graveyard) {
+            std::mem::forget(seg);
         }
         if let Some(e) = &error {
             self.health.with(|t| {

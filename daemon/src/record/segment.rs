@@ -38,6 +38,15 @@ pub struct SegmentMeta {
     pub leg_names: Vec<String>,
 }
 
+/// [`SegmentWriter::close`] failed.
+#[derive(Debug)]
+pub struct CloseFailed {
+    /// What went wrong.
+    pub error: RecordError,
+    /// The segment, still open, when it may be closed later (keep it; see `close`).
+    pub segment: Option<Box<SegmentWriter>>,
+}
+
 /// The file name of a segment: `<run-id>-<index:04>.h5`.
 pub fn segment_file_name(run_id: &str, index: u32) -> String {
     format!("{run_id}-{index:04}.h5")
@@ -404,9 +413,23 @@ impl SegmentWriter {
     }
 
     /// Marks the segment closed in `segment_state`, syncs and closes it.
-    pub fn close(mut self, dropped_rows_run: u64) -> Result<PathBuf, RecordError> {
-        self.write_state(STATE_CLOSED, dropped_rows_run)?;
-        self.flush_file_only()?;
+    ///
+    /// When the final flush fails (a full disk), the segment comes back in the error with
+    /// its handles intact. Do not drop it then: after a failed write, closing HDF5 objects
+    /// can leave dangling ids behind (HDF5 1.10.8 frees a dataset whose flush failed but
+    /// keeps its id), and the next `start_swmr` of any file crashes on them (seen in the
+    /// full-disk test). Keep it, and try again once space returns.
+    pub fn close(mut self, dropped_rows_run: u64) -> Result<PathBuf, CloseFailed> {
+        if let Err(error) = self
+            .write_state(STATE_CLOSED, dropped_rows_run)
+            .and_then(|()| self.flush_file_only())
+        {
+            return Err(CloseFailed {
+                error,
+                segment: Some(Box::new(self)),
+            });
+        }
+        // Nothing is dirty now, so closing does not write.
         let path = self.path.clone();
         let SegmentWriter {
             file,
@@ -418,7 +441,10 @@ impl SegmentWriter {
             ..
         } = self;
         drop((tilt, control, legs_ds, events, state_ds));
-        file.close().map_err(h5(&path, "close the file"))?;
+        file.close().map_err(|e| CloseFailed {
+            error: h5(&path, "close the file")(e),
+            segment: None,
+        })?;
         Ok(path)
     }
 

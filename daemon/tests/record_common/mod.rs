@@ -143,3 +143,102 @@ pub fn have_h5py() -> bool {
     }
     ok
 }
+
+/// Re-runs this test binary as a child process running only `test_name`, with `env`
+/// set (the test sees the variable and plays the child's part). Its stdout lines come
+/// through the returned receiver; stdin is piped (closing it tells the child to stop).
+pub fn spawn_child(
+    test_name: &str,
+    env: &[(&str, &str)],
+) -> (std::process::Child, std::sync::mpsc::Receiver<String>) {
+    use std::io::BufRead;
+    use std::process::{Command, Stdio};
+    let exe = std::env::current_exe().expect("current_exe");
+    let mut child = Command::new(exe)
+        .args([test_name, "--exact", "--nocapture", "--test-threads=1"])
+        .envs(env.iter().copied())
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::inherit())
+        .spawn()
+        .expect("spawn child");
+    let out = child.stdout.take().expect("stdout");
+    let (tx, rx) = std::sync::mpsc::channel();
+    std::thread::spawn(move || {
+        for line in std::io::BufReader::new(out).lines() {
+            let Ok(line) = line else { break };
+            if tx.send(line).is_err() {
+                break;
+            }
+        }
+    });
+    (child, rx)
+}
+
+/// Waits up to `secs` for a child line starting with `prefix`; returns the rest.
+pub fn expect_line(rx: &std::sync::mpsc::Receiver<String>, prefix: &str, secs: u64) -> String {
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(secs);
+    loop {
+        let left = deadline.saturating_duration_since(std::time::Instant::now());
+        match rx.recv_timeout(left) {
+            Ok(l) if l.starts_with(prefix) => return l[prefix.len()..].trim().to_owned(),
+            Ok(_) => {}
+            Err(e) => {
+                panic!("no line starting with {prefix:?} from the child within {secs} s: {e}")
+            }
+        }
+    }
+}
+
+/// Parses `"a b c"` into three numbers.
+pub fn three(s: &str) -> (u64, u64, u64) {
+    let v: Vec<u64> = s
+        .split_whitespace()
+        .take(3)
+        .map(|x| x.parse().expect("number"))
+        .collect();
+    (v[0], v[1], v[2])
+}
+
+/// Feeds invented rows paced at about `tilt_per_s` tilt rows per second of wall time
+/// (a control row per 10 tilt rows, an event per 30), while `keep_going(pushed)` holds;
+/// calls `each` about every 10 ms. Returns (tilt, control, events) pushed.
+pub fn paced_feed(
+    sink: &mut dyn stilt_daemon::rows::RowSink,
+    legs: usize,
+    tilt_per_s: u64,
+    mut keep_going: impl FnMut((u64, u64, u64)) -> bool,
+) -> (u64, u64, u64) {
+    let start = std::time::Instant::now();
+    let (mut t, mut c, mut e) = (0u64, 0u64, 0u64);
+    while keep_going((t, c, e)) {
+        let due = (start.elapsed().as_secs_f64() * tilt_per_s as f64) as u64;
+        while t < due {
+            sink.tilt(&tilt(t));
+            t += 1;
+            if t % 10 == 0 {
+                sink.control(&control(c, legs));
+                c += 1;
+            }
+            if t % 30 == 0 {
+                sink.event(&event(e));
+                e += 1;
+            }
+        }
+        std::thread::sleep(std::time::Duration::from_millis(10));
+    }
+    (t, c, e)
+}
+
+/// Asserts that `rows` are exactly the invented tilt rows `0..rows.len()`, naming the
+/// first difference (instead of printing thousands of rows).
+pub fn assert_tilt_prefix(rows: &[TiltSample], what: &str) {
+    for (i, r) in rows.iter().enumerate() {
+        let want = tilt(i as u64);
+        assert!(
+            *r == want,
+            "{what}: row {i} of {} differs: got {r:?}, want {want:?}",
+            rows.len()
+        );
+    }
+}
