@@ -17,5 +17,6 @@ pub mod demo;
 pub mod pipeline;
 pub mod record;
 pub mod rows;
+pub mod runtime;
 pub mod sim;
 pub mod status;
