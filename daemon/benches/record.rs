@@ -51,7 +51,10 @@ fn meta(index: u32) -> SegmentMeta {
 /// each), then closes it (segment_state, H5Fflush, fsync). Returns the file size.
 fn write_segment(path: &std::path::Path, wire: &[TiltWire], level: u8) -> u64 {
     let _ = std::fs::remove_file(path);
-    let opts = LayoutOptions { deflate_level: level, ..LayoutOptions::default() };
+    let opts = LayoutOptions {
+        deflate_level: level,
+        ..LayoutOptions::default()
+    };
     let mut seg = SegmentWriter::create(path, &meta(0), &opts).expect("create");
     for b in wire.chunks(BATCH) {
         seg.append_tilt_wire(b).expect("append");
@@ -76,19 +79,21 @@ fn recorder_sink_tilt(bencher: divan::Bencher) {
     let rows = rows();
     let cfg = record_common::config();
     let dir = bench_dir().join("sink");
-    bencher.counter(divan::counter::ItemsCount::new(ROWS)).bench_local(|| {
-        let _ = std::fs::remove_dir_all(&dir);
-        let mut o = RecorderOptions::from_config(&cfg);
-        o.dir = dir.clone();
-        o.blocking = true;
-        o.run_id = Some("sink".into());
-        let (mut sink, _h) = Recorder::start(&cfg, o).expect("start");
-        for r in &rows {
-            sink.tilt(r);
-        }
-        let rep = sink.finish().expect("finish");
-        assert_eq!(rep.tilt_rows as usize, ROWS);
-    });
+    bencher
+        .counter(divan::counter::ItemsCount::new(ROWS))
+        .bench_local(|| {
+            let _ = std::fs::remove_dir_all(&dir);
+            let mut o = RecorderOptions::from_config(&cfg);
+            o.dir = dir.clone();
+            o.blocking = true;
+            o.run_id = Some("sink".into());
+            let (mut sink, _h) = Recorder::start(&cfg, o).expect("start");
+            for r in &rows {
+                sink.tilt(r);
+            }
+            let rep = sink.finish().expect("finish");
+            assert_eq!(rep.tilt_rows as usize, ROWS);
+        });
 }
 
 fn main() {
@@ -96,9 +101,19 @@ fn main() {
     let wire: Vec<TiltWire> = rows().iter().map(TiltWire::from).collect();
     let dir = bench_dir();
     let size = write_segment(&dir.join("rows.h5"), &wire, 1);
-    println!("reference rows: {} ({ROWS} tilt rows, {} bytes per row in memory)", dir.join("rows.h5").display(), std::mem::size_of::<TiltWire>());
-    println!("rust deflate 1: {:.2} bytes per row on disk", size as f64 / ROWS as f64);
+    println!(
+        "reference rows: {} ({ROWS} tilt rows, {} bytes per row in memory)",
+        dir.join("rows.h5").display(),
+        std::mem::size_of::<TiltWire>()
+    );
+    println!(
+        "rust deflate 1: {:.2} bytes per row on disk",
+        size as f64 / ROWS as f64
+    );
     let size4 = write_segment(&dir.join("rust-level4.h5"), &wire, 4);
-    println!("rust deflate 4: {:.2} bytes per row on disk", size4 as f64 / ROWS as f64);
+    println!(
+        "rust deflate 4: {:.2} bytes per row on disk",
+        size4 as f64 / ROWS as f64
+    );
     divan::main();
 }
