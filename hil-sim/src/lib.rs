@@ -13,14 +13,19 @@
 //! A run is deterministic for a given seed: every noise source draws from its own
 //! ChaCha8 stream, so the disturbances are the same whatever the controller does.
 //!
-//! This crate knows the stage's physics and (later) the device side of each protocol.
-//! It never knows the daemon's internals.
+//! This crate knows the stage's physics, the device side of each protocol and fault
+//! schedules. It never knows the daemon's internals.
 
+pub mod devices;
 pub mod environment;
+pub mod faults;
 pub mod noise;
+pub mod portmap;
+pub mod rig;
 pub mod stage;
 pub mod thermal;
 
+pub use rig::Rig;
 pub use stage::{SimStage, TiltReading, Truth};
 
 /// Seconds in a day, for the daily cycles.

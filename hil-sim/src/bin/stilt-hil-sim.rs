@@ -1,0 +1,3 @@
+//! stilt-hil-sim: placeholder until the pty server lands.
+
+fn main() {}
