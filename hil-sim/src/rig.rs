@@ -411,3 +411,263 @@ impl Rig {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::faults::{Fault, FaultKind};
+    use stilt_protocol::line::tilt::{self, TiltSample};
+    use stilt_protocol::modbus::{ModbusError, decode_response, encode_request, rtd};
+    use stilt_protocol::scpi::heater::{HeaterReply, HeaterRequest};
+    use stilt_protocol::scpi::{MAX_MESSAGE_LEN, split_message};
+
+    fn demo() -> Config {
+        stilt_config::load_str(stilt_config::DEMO_SCENARIO, "demo").unwrap()
+    }
+
+    fn rig(faults: Vec<Fault>) -> Rig {
+        Rig::new(&demo(), FaultSchedule::new(faults), 1).unwrap()
+    }
+
+    fn fault(device: DeviceKind, kind: FaultKind, at_s: f64, duration_s: f64) -> Fault {
+        Fault {
+            device,
+            kind,
+            at_s,
+            duration_s,
+        }
+    }
+
+    fn ms(v: u64) -> Duration {
+        Duration::from_millis(v)
+    }
+
+    /// Sends `TLT?` at line time `now` and returns what is due at once.
+    fn tilt_query(r: &mut Rig, now: Duration) -> Option<Vec<u8>> {
+        r.handle_input(DeviceKind::Tiltmeter, now, tilt::QUERY);
+        r.poll_transmit(DeviceKind::Tiltmeter, now)
+    }
+
+    /// One Modbus read of the scan counter at `now`, answered after the t3.5 silence.
+    fn thermo_raw(r: &mut Rig, now: Duration) -> Option<Vec<u8>> {
+        let mut tx = Vec::new();
+        encode_request(1, &rtd::read_resistances(0, 3).unwrap(), &mut tx).unwrap();
+        r.handle_input(DeviceKind::Thermometer, now, &tx);
+        let due = r.poll_timeout(DeviceKind::Thermometer)?;
+        r.handle_timeout(DeviceKind::Thermometer, due);
+        r.poll_transmit(DeviceKind::Thermometer, due)
+    }
+
+    fn heater(r: &mut Rig, now: Duration, msg: &[u8]) -> Option<Vec<u8>> {
+        r.handle_input(DeviceKind::Heater, now, msg);
+        r.poll_transmit(DeviceKind::Heater, now)
+    }
+
+    fn amps(reply: &[u8]) -> f64 {
+        let (unit, _) = split_message(reply, MAX_MESSAGE_LEN).unwrap().unwrap();
+        match (HeaterRequest::MeasureCurrent { channel: 2 }).decode_reply(unit) {
+            Ok(HeaterReply::Amps(a)) => a,
+            other => panic!("{other:?}"),
+        }
+    }
+
+    #[test]
+    fn tiltmeter_samples_at_its_rate_in_simulated_time() {
+        let mut r = rig(vec![]);
+        for _ in 0..100 {
+            r.advance(0.01);
+        }
+        // Demo rate 10 Hz: samples at t = 0, 0.1, …, 1.0.
+        assert_eq!(r.tiltmeter().counters().samples, 11);
+        r.advance(9.0);
+        assert_eq!(r.tiltmeter().counters().samples, 101);
+        let reply = tilt_query(&mut r, ms(0)).unwrap();
+        let spec = tilt::default_spec().unwrap();
+        let (reading, _) = spec.decode(&reply).unwrap().unwrap();
+        let s = TiltSample::from_reading(&spec, &reading).unwrap();
+        let truth = r.stage().truth().plate_tilt_urad;
+        // Noise is ≈ 22 nrad per sample in the demo (10 nrad/√Hz at 10 Hz).
+        assert!((s.x_urad - truth[0]).abs() < 0.5 && (s.y_urad - truth[1]).abs() < 0.5);
+        assert_eq!(s.status, 0);
+    }
+
+    #[test]
+    fn thermometer_reports_the_leg_temperature_as_pt100_resistance() {
+        let mut r = rig(vec![]);
+        r.advance(1.0);
+        let raw = thermo_raw(&mut r, ms(0)).unwrap();
+        let req = rtd::read_resistances(0, 3).unwrap();
+        let (resp, _) = decode_response(&raw, 1, &req).unwrap().unwrap();
+        let ohms = rtd::parse_resistances(&resp, 3).unwrap();
+        let legs = r.stage().truth().leg_temp_c;
+        for (o, t) in ohms.iter().zip(legs) {
+            let back = stilt_protocol::convert::PlatinumRtd::PT100
+                .temperature(o.unwrap())
+                .unwrap();
+            // 1 mK noise in the demo; 0.1 mΩ quantum ≈ 0.26 mK.
+            assert!((back - t).abs() < 0.01, "{back} vs {t}");
+        }
+    }
+
+    #[test]
+    fn heater_power_reaches_the_stage_and_open_circuit_cuts_it() {
+        let oc = FaultKind::OpenCircuit { channel: 2 };
+        let mut r = rig(vec![fault(DeviceKind::Heater, oc, 10.0, 5.0)]);
+        assert_eq!(
+            heater(&mut r, ms(0), b"OUTP2:VOLT 8;:OUTP2:STAT ON\n"),
+            None
+        );
+        assert!(r.take_heater_changed());
+        // P = V²/R = 64/50 W (demo heaters are 50 Ω).
+        assert!((r.stage().truth().heater_power_w[1] - 1.28).abs() < 1e-12);
+        assert!((amps(&heater(&mut r, ms(1), b"MEAS2:CURR?\n").unwrap()) - 0.16).abs() < 1e-9);
+        r.advance(11.0);
+        assert_eq!(r.stage().truth().heater_power_w[1], 0.0);
+        assert_eq!(amps(&heater(&mut r, ms(2), b"MEAS2:CURR?\n").unwrap()), 0.0);
+        assert!(r.summary().heater_state.channels[1].open_circuit);
+        assert!(
+            (r.summary().heater_power_w[1] - 1.28).abs() < 1e-12,
+            "commanded stays"
+        );
+        r.advance(5.0);
+        assert!((r.stage().truth().heater_power_w[1] - 1.28).abs() < 1e-12);
+        assert!((amps(&heater(&mut r, ms(3), b"MEAS2:CURR?\n").unwrap()) - 0.16).abs() < 1e-9);
+    }
+
+    #[test]
+    fn no_reply_loses_replies_until_the_fault_ends() {
+        let mut r = rig(vec![fault(
+            DeviceKind::Tiltmeter,
+            FaultKind::NoReply,
+            1.0,
+            2.0,
+        )]);
+        assert!(tilt_query(&mut r, ms(0)).is_some());
+        r.advance(1.5);
+        assert!(tilt_query(&mut r, ms(10)).is_none());
+        assert_eq!(
+            r.poll_timeout(DeviceKind::Tiltmeter),
+            None,
+            "nothing queued"
+        );
+        r.advance(1.5);
+        assert!(tilt_query(&mut r, ms(20)).is_some());
+        let l = r.link(DeviceKind::Tiltmeter);
+        assert_eq!((l.requests, l.replies_sent, l.replies_lost), (3, 2, 1));
+    }
+
+    #[test]
+    fn late_reply_waits_in_wall_clock_time_and_keeps_order() {
+        let late = FaultKind::LateReply { delay: ms(300) };
+        let mut r = rig(vec![fault(DeviceKind::Heater, late, 0.0, 1.0)]);
+        assert_eq!(heater(&mut r, ms(100), b"*OPC?\n"), None);
+        assert_eq!(r.poll_timeout(DeviceKind::Heater), Some(ms(400)));
+        assert_eq!(r.poll_transmit(DeviceKind::Heater, ms(399)), None);
+        assert_eq!(
+            r.poll_transmit(DeviceKind::Heater, ms(400)),
+            Some(b"1\n".to_vec())
+        );
+        // A reply made after the fault ends still waits behind one queued during it.
+        r.handle_input(DeviceKind::Heater, ms(500), b"*OPC?\n");
+        r.advance(2.0);
+        r.handle_input(DeviceKind::Heater, ms(600), b"SYST:CHAN?\n");
+        assert_eq!(r.poll_transmit(DeviceKind::Heater, ms(700)), None);
+        assert_eq!(
+            r.poll_transmit(DeviceKind::Heater, ms(800)),
+            Some(b"1\n".to_vec())
+        );
+        assert_eq!(
+            r.poll_transmit(DeviceKind::Heater, ms(800)),
+            Some(b"3\n".to_vec())
+        );
+    }
+
+    #[test]
+    fn garbled_and_bad_crc_replies_are_caught_by_the_master_decoders() {
+        let g = FaultKind::Garbled { bytes: 2 };
+        let mut r = rig(vec![
+            fault(DeviceKind::Tiltmeter, g, 0.0, 1.0),
+            fault(DeviceKind::Thermometer, g, 0.0, 1.0),
+            fault(DeviceKind::Heater, g, 0.0, 1.0),
+            fault(DeviceKind::Thermometer, FaultKind::BadCrc, 2.0, 1.0),
+        ]);
+        let spec = tilt::default_spec().unwrap();
+        let t = tilt_query(&mut r, ms(0)).unwrap();
+        assert!(spec.decode(&t).is_err(), "{t:?}");
+        let req = rtd::read_resistances(0, 3).unwrap();
+        let raw = thermo_raw(&mut r, ms(10)).unwrap();
+        assert!(matches!(
+            decode_response(&raw, 1, &req),
+            Err(ModbusError::Crc { .. })
+        ));
+        let h = heater(&mut r, ms(20), b"MEAS2:CURR?\n").unwrap();
+        let (unit, _) = split_message(&h, MAX_MESSAGE_LEN).unwrap().unwrap();
+        assert!(
+            (HeaterRequest::MeasureCurrent { channel: 2 })
+                .decode_reply(unit)
+                .is_err()
+        );
+        r.advance(2.5);
+        let raw = thermo_raw(&mut r, ms(30)).unwrap();
+        assert!(matches!(
+            decode_response(&raw, 1, &req),
+            Err(ModbusError::Crc { .. })
+        ));
+        r.advance(1.0);
+        let raw = thermo_raw(&mut r, ms(40)).unwrap();
+        assert!(decode_response(&raw, 1, &req).unwrap().is_some());
+        assert!(spec.decode(&tilt_query(&mut r, ms(50)).unwrap()).is_ok());
+        let l = r.link(DeviceKind::Thermometer);
+        assert_eq!((l.replies_garbled, l.replies_bad_crc), (1, 1));
+    }
+
+    #[test]
+    fn disconnect_drops_everything_both_ways_then_recovers() {
+        let late = FaultKind::LateReply { delay: ms(500) };
+        let mut r = rig(vec![
+            fault(DeviceKind::Tiltmeter, late, 0.0, 1.0),
+            fault(DeviceKind::Tiltmeter, FaultKind::Disconnect, 1.0, 1.0),
+        ]);
+        // A late reply queued before the cable is pulled never arrives; a half command is lost.
+        r.handle_input(DeviceKind::Tiltmeter, ms(0), tilt::QUERY);
+        r.handle_input(DeviceKind::Tiltmeter, ms(1), b"TL");
+        r.advance(1.2);
+        assert!(r.is_disconnected(DeviceKind::Tiltmeter));
+        assert_eq!(r.poll_transmit(DeviceKind::Tiltmeter, ms(600)), None);
+        assert!(tilt_query(&mut r, ms(700)).is_none());
+        r.advance(1.0);
+        assert!(!r.is_disconnected(DeviceKind::Tiltmeter));
+        // "T?\r" would complete the half command if it had been kept: it is answered E,1.
+        let first = {
+            r.handle_input(DeviceKind::Tiltmeter, ms(800), b"T?\r");
+            r.poll_transmit(DeviceKind::Tiltmeter, ms(800))
+        };
+        assert_eq!(first, Some(tilt::UNKNOWN_COMMAND_REPLY.to_vec()));
+        assert!(tilt_query(&mut r, ms(900)).unwrap().starts_with(b"T,"));
+        let l = r.link(DeviceKind::Tiltmeter);
+        assert_eq!(l.input_discarded, tilt::QUERY.len() as u64);
+        assert_eq!(l.replies_lost, 1);
+    }
+
+    #[test]
+    fn stuck_thermometer_repeats_while_the_leg_heats() {
+        let mut r = rig(vec![fault(
+            DeviceKind::Thermometer,
+            FaultKind::StuckValue,
+            5.0,
+            100.0,
+        )]);
+        heater(&mut r, ms(0), b"OUTP1:VOLT 10;:OUTP1:STAT ON\n");
+        r.advance(5.0);
+        let stuck = r.thermometer().reported_ohms(0).unwrap();
+        let t0 = r.stage().truth().leg_temp_c[0];
+        r.advance(90.0);
+        assert!(
+            r.stage().truth().leg_temp_c[0] > t0 + 0.005,
+            "2 W heats the leg"
+        );
+        assert_eq!(r.thermometer().reported_ohms(0), Some(stuck));
+        r.advance(20.0);
+        assert!(r.thermometer().reported_ohms(0).unwrap() > stuck);
+    }
+}
