@@ -279,7 +279,7 @@ async fn serve(
             r = port.read(&mut buf) => match r {
                 Ok(n) if n > 0 => {
                     if !peer {
-                        tracing::info!("master connected");
+                        tracing::info!("peer opened the port");
                         peer = true;
                     }
                     lock(&rig).handle_input(device, start.elapsed(), &buf[..n]);
@@ -288,13 +288,20 @@ async fn serve(
                 // or has let go. Wait and try again, so it may connect late or reconnect.
                 _ => {
                     if peer {
-                        tracing::info!("master gone; waiting for it to reopen the port");
+                        tracing::info!("peer closed the port; waiting for it to reopen");
                         peer = false;
                     }
                     tokio::time::sleep(NO_PEER_BACKOFF).await;
                 }
             },
             () = wake => lock(&rig).handle_timeout(device, start.elapsed()),
+        }
+        // The state file is updated before any reply leaves, so a master that has seen the
+        // reply to a message can rely on the file showing that message's settings.
+        if let Some(p) = &state
+            && lock(&rig).take_heater_changed()
+        {
+            write_state(&rig, p);
         }
         loop {
             let next = lock(&rig).poll_transmit(device, start.elapsed());
@@ -305,11 +312,6 @@ async fn serve(
                     tracing::warn!(error = %e, write_errors, "reply not sent");
                 }
             }
-        }
-        if let Some(p) = &state
-            && lock(&rig).take_heater_changed()
-        {
-            write_state(&rig, p);
         }
     }
 }
