@@ -5,6 +5,7 @@
 //! - [`sim`]: the in-process world (simulated stage wired to the pipeline);
 //! - [`demo`]: `stiltd demo` and its summary;
 //! - [`rows`]: the domain rows and the [`rows::RowSink`] trait;
+//! - [`status`]: the live state and the change requests the outside world exchanges with the loop;
 //! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits.
 //!
 //! The binaries (`src/bin/`) are thin: they parse the command line and call into here.
@@ -16,4 +17,6 @@ pub mod demo;
 pub mod pipeline;
 pub mod record;
 pub mod rows;
+pub mod runtime;
 pub mod sim;
+pub mod status;

@@ -10,7 +10,7 @@
 //!
 //! No clocks are read here: every call carries its time.
 
-use stilt_config::{Config, Mode};
+use stilt_config::{Config, LoopGains, Mode};
 
 use crate::core::cascade::{Controller, Inputs, LimitFlags, Outputs};
 use crate::rows::{
@@ -29,6 +29,10 @@ pub enum Command {
     SetLegBias(f64),
     /// New per-leg power for manual mode, W.
     SetManualPower(f64),
+    /// New gains for both tilt loops (bumpless).
+    SetTiltGains(LoopGains),
+    /// New gains for every leg loop (bumpless).
+    SetLegGains(LoopGains),
 }
 
 #[derive(Debug, Default, Clone)]
@@ -69,6 +73,8 @@ pub struct Pipeline {
     last_limits: LimitFlags,
     counters: PipelineCounters,
     last_tilt_urad: Option<[f64; 2]>,
+    last_leg_temps: Vec<Option<f64>>,
+    last_row: Option<ControlRow>,
 }
 
 impl Pipeline {
@@ -84,6 +90,8 @@ impl Pipeline {
             last_limits: LimitFlags::default(),
             counters: PipelineCounters::default(),
             last_tilt_urad: None,
+            last_leg_temps: Vec::new(),
+            last_row: None,
             cfg,
         };
         let detail = format!(
@@ -106,6 +114,16 @@ impl Pipeline {
     /// The controller (read-only).
     pub fn controller(&self) -> &Controller {
         &self.controller
+    }
+
+    /// The row written at the last tick.
+    pub fn last_row(&self) -> Option<&ControlRow> {
+        self.last_row.as_ref()
+    }
+
+    /// The controller, for changes between ticks that are not [`Command`]s.
+    pub fn controller_mut(&mut self) -> &mut Controller {
+        &mut self.controller
     }
 
     /// Counters so far.
@@ -196,6 +214,23 @@ impl Pipeline {
                 self.controller.set_manual_power_w(p);
                 (EventKind::Setpoint, format!("manual_power_w: {old} → {p}"))
             }
+            Command::SetTiltGains(g) => {
+                let old = self.controller.control().tilt_loop;
+                self.controller.retune_tilt(g, self.last_tilt_urad);
+                (
+                    EventKind::Gains,
+                    format!("tilt_loop: {} → {}", gains_text(&old), gains_text(&g)),
+                )
+            }
+            Command::SetLegGains(g) => {
+                let old = self.controller.control().leg_loop;
+                let temps = self.last_leg_temps.clone();
+                self.controller.retune_leg(g, &temps);
+                (
+                    EventKind::Gains,
+                    format!("leg_loop: {} → {}", gains_text(&old), gains_text(&g)),
+                )
+            }
         };
         self.event(t_s, kind, source, detail);
     }
@@ -230,6 +265,7 @@ impl Pipeline {
         if temps.iter().any(Option::is_none) {
             self.counters.ticks_missing_leg_temp += 1;
         }
+        self.last_leg_temps.clone_from(&temps);
         let out = self.controller.step(&Inputs {
             now_s: t_s,
             tilt_urad: tilt,
@@ -276,6 +312,7 @@ impl Pipeline {
         };
         self.sink.control(&row);
         self.counters.ticks += 1;
+        self.last_row = Some(row);
         out
     }
 
@@ -328,4 +365,10 @@ impl Pipeline {
         let report = self.sink.finish()?;
         Ok((report, self.counters))
     }
+}
+
+/// `kp=…, ti_s=…, td_s=…` for the audit trail.
+fn gains_text(g: &LoopGains) -> String {
+    let ti = g.ti_s.map_or("none".to_string(), |t| t.to_string());
+    format!("kp={}, ti_s={ti}, td_s={}", g.kp, g.td_s)
 }

@@ -64,9 +64,9 @@ fn run_demo(
         .duration_since(std::time::UNIX_EPOCH)
         .map_or(0, |d| d.as_nanos() as i64);
     let bar = progress_bar(duration_s);
-    let progress: Option<Box<dyn FnMut(f64, f64)>> = bar.clone().map(|b| {
+    let progress: Option<Box<dyn FnMut(f64, f64) + Send>> = bar.clone().map(|b| {
         Box::new(move |done: f64, _total: f64| b.set_position(done as u64))
-            as Box<dyn FnMut(f64, f64)>
+            as Box<dyn FnMut(f64, f64) + Send>
     });
     let opts = DemoOptions {
         duration_s,
