@@ -671,3 +671,51 @@ mod tests {
         assert!(r.thermometer().reported_ohms(0).unwrap() > stuck);
     }
 }
+
+#[cfg(test)]
+mod never_panic {
+    use super::*;
+    use crate::faults::{Fault, FaultKind};
+    use proptest::prelude::*;
+
+    proptest! {
+        /// Any bytes, in any chunking, on any line, under every reply fault: no panic, and
+        /// the queues stay bounded.
+        #[test]
+        fn any_bytes_on_any_line(
+            chunks in proptest::collection::vec(
+                (0usize..3, proptest::collection::vec(any::<u8>(), 0..300), 0u64..20),
+                1..40,
+            ),
+            garble in 1usize..16,
+        ) {
+            let cfg = stilt_config::load_str(stilt_config::DEMO_SCENARIO, "demo").unwrap();
+            let faults = DeviceKind::ALL
+                .into_iter()
+                .flat_map(|device| {
+                    [
+                        FaultKind::Garbled { bytes: garble },
+                        FaultKind::LateReply { delay: Duration::from_millis(3) },
+                        FaultKind::StuckValue,
+                    ]
+                    .map(|kind| Fault { device, kind, at_s: 0.5, duration_s: 1.0 })
+                })
+                .collect();
+            let mut r = Rig::new(&cfg, FaultSchedule::new(faults), 1).unwrap();
+            let mut now = Duration::ZERO;
+            for (dev, bytes, gap_ms) in chunks {
+                let d = DeviceKind::ALL[dev];
+                now += Duration::from_millis(gap_ms);
+                r.advance(gap_ms as f64 / 10.0);
+                r.handle_input(d, now, &bytes);
+                if let Some(t) = r.poll_timeout(d) {
+                    r.handle_timeout(d, t.max(now));
+                }
+                while r.poll_transmit(d, now + Duration::from_millis(5)).is_some() {}
+                prop_assert!(r.outbox[d.index()].len() <= MAX_QUEUED_REPLIES);
+            }
+            let s = r.summary();
+            prop_assert!(s.heater_power_w.iter().all(|p| p.is_finite() && *p >= 0.0));
+        }
+    }
+}
