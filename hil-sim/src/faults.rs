@@ -490,6 +490,21 @@ mod tests {
     }
 
     #[test]
+    fn the_shipped_scenario_parses_and_uses_every_kind() {
+        let text = include_str!("../scenarios/every-fault.toml");
+        let s = parse(text).unwrap();
+        let mut kinds: Vec<_> = s.faults().iter().map(|f| f.kind.name()).collect();
+        kinds.sort_unstable();
+        let mut all: Vec<_> = KIND_NAMES.split(", ").collect();
+        all.sort_unstable();
+        assert_eq!(kinds, all);
+        assert!(
+            s.check_heater_channels(3, "demo").is_ok(),
+            "the demo has 3 legs"
+        );
+    }
+
+    #[test]
     fn empty_file_is_an_empty_schedule() {
         assert!(parse("").unwrap().faults().is_empty());
     }
