@@ -344,7 +344,16 @@ impl Interlocks {
             .iter()
             .any(|c| c.rule.action == InterlockAction::Limit && c.kind == Kind::TotalPower)
         {
-            let total: f64 = power.iter().sum();
+            // Scale by what is really delivered where the supply reads back more than asked.
+            let commanded: f64 = power.iter().sum();
+            let read: f64 = i.readback_w.iter().map(|p| p.unwrap_or(0.0)).sum();
+            let applied: f64 = i.last_applied_w.iter().sum();
+            let gain = if applied > 0.0 && read > applied {
+                read / applied
+            } else {
+                1.0
+            };
+            let total = commanded * gain;
             if total > self.limits.max_total_power_w && total > 0.0 {
                 let s = self.limits.max_total_power_w / total;
                 power.iter_mut().for_each(|p| *p *= s);
