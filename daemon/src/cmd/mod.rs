@@ -10,6 +10,8 @@ use stilt_config::ConfigErrors;
 
 pub mod check;
 pub mod demo;
+pub mod report;
+pub mod tune;
 
 /// Every `stiltd` subcommand.
 #[derive(clap::Subcommand, Debug)]
@@ -18,6 +20,10 @@ pub enum Command {
     Check(check::CheckArgs),
     /// Run the full pipeline on the built-in simulated stage (no hardware needed).
     Demo(demo::DemoArgs),
+    /// Summarise recorded runs: tilt statistics, spectra, Allan deviation, coupling, plots.
+    Report(report::ReportArgs),
+    /// Step-test one loop on the simulated stage, fit a model and propose gains.
+    Tune(tune::TuneArgs),
 }
 
 impl Command {
@@ -26,6 +32,8 @@ impl Command {
         match self {
             Command::Check(a) => check::run(a),
             Command::Demo(a) => demo::run(a),
+            Command::Report(a) => report::run(a),
+            Command::Tune(a) => tune::run(a),
         }
     }
 }
