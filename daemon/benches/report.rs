@@ -74,6 +74,7 @@ fn recording(days: f64) -> PathBuf {
 /// Runs `stiltd report` on `dir`; returns (wall s, peak RSS KiB of the child).
 fn run_report(dir: &Path) -> (f64, i64) {
     let out = bench_root().join("out");
+    std::fs::create_dir_all(&out).expect("output folder");
     #[allow(clippy::zombie_processes)] // reaped by wait4 below
     let child = std::process::Command::new(env!("CARGO_BIN_EXE_stiltd"))
         .arg("report")

@@ -482,7 +482,7 @@ pub fn run_step_test(
         .collect();
     let time_s: Vec<f64> = keep.iter().map(|&i| time_s[i]).collect();
     let mut output: Vec<f64> = keep.iter().map(|&i| output[i]).collect();
-    let drift = remove_baseline_drift(&time_s, &mut output, t_step);
+    let drift = remove_baseline_drift(&time_s, &mut output, t_step + cfg.control.period_s());
     let (iu, ou) = opts.target.units();
     // In manual mode the leg limits are the test's own: count only limits in auto modes.
     let limit_ticks = match opts.target {
@@ -495,7 +495,9 @@ pub fn run_step_test(
         output_unit: ou,
         input_before,
         input_step: d,
-        step_time_s: t_step,
+        // The tick after the change computes the new command and applies it at its end,
+        // so the stage sees the step one control period after `t_step`.
+        step_time_s: t_step + cfg.control.period_s(),
         time_s,
         output,
         drift_per_s: drift,

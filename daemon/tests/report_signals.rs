@@ -156,12 +156,19 @@ fn write_run(dir: &Path) -> Injected {
     inj
 }
 
+/// HDF5 tests in one process run one at a time (the library is process-global).
+fn serial() -> std::sync::MutexGuard<'static, ()> {
+    static LOCK: std::sync::Mutex<()> = std::sync::Mutex::new(());
+    LOCK.lock().unwrap_or_else(|e| e.into_inner())
+}
+
 fn rel(a: f64, b: f64) -> f64 {
     (a - b).abs() / b.abs()
 }
 
 #[test]
 fn report_figures_match_injected_signals_and_direct_computation() {
+    let _g = serial();
     let dir = tmp_dir("signals");
     let inj = write_run(&dir);
     let set = SegmentSet::open_dir(&dir).expect("open");
@@ -366,5 +373,55 @@ fn bad_arguments_get_clear_errors() {
         String::from_utf8_lossy(&o.stderr)
     );
     assert!(String::from_utf8_lossy(&o.stderr).contains("junk.h5"));
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+/// A recording of the simulated stage (SimLoop → recorder): the ASD's white floor above
+/// the loop's bandwidth is the simulated tiltmeter's noise density, which the simulator
+/// draws as σ = S·√(fs/2) per sample (one-sided density S of white noise sampled at fs).
+#[test]
+fn simulated_stage_recording_shows_the_tiltmeter_noise_floor() {
+    use stilt_daemon::pipeline::Pipeline;
+    use stilt_daemon::sim::SimLoop;
+    use stilt_hil_sim::SimStage;
+    let _g = serial();
+    let dir = tmp_dir("simloop");
+    let cfg = config();
+    let mut o = RecorderOptions::from_config(&cfg);
+    o.dir = dir.clone();
+    o.start_utc_ns = Some(T0_UTC_NS);
+    o.blocking = true;
+    o.fsync = false;
+    let (sink, _h) = Recorder::start(&cfg, o).expect("start recorder");
+    let mut sim = SimLoop::new(
+        SimStage::new(&cfg),
+        Pipeline::new(cfg.clone(), Box::new(sink), T0_UTC_NS),
+    );
+    sim.advance_to(3.0 * 3600.0, &mut |_| {});
+    let t = sim.time_s();
+    sim.into_pipeline().finish(t, "test").expect("finish");
+    let set = SegmentSet::open_dir(&dir).expect("open");
+    let opts = ReportOptions {
+        window: TimeWindow {
+            from_utc_ns: Some(T0_UTC_NS + 3_600_000_000_000),
+            to_utc_ns: None,
+        },
+        asd_segment_s: 600.0,
+        ..ReportOptions::default()
+    };
+    let r = report::compute(&set, &opts, &mut |_, _| {}).expect("report");
+    let floor = cfg.simulation.tilt_noise_nrad_per_sqrt_hz * 1e-9;
+    for a in &r.axes {
+        let s = a.asd.as_ref().expect("asd");
+        let m = report::band_median(s, 1.0, 4.5).expect("band");
+        assert!(
+            rel(m, floor) < 0.05,
+            "axis {}: floor {m:e} vs {floor:e} rad/√Hz",
+            a.axis
+        );
+    }
+    assert_eq!(r.timing.missed_ticks, 0);
+    assert_eq!(r.timing.nominal_period_s, Some(1.0));
+    assert_eq!(r.heaters.len(), 3);
     let _ = std::fs::remove_dir_all(&dir);
 }
