@@ -556,8 +556,10 @@ pub fn run_relay_test(
     let base_sp: Vec<f64> = vec![w.ctl.control().leg_bias_c; cfg.legs.len()];
     let mut u = d;
     let (mut time_s, mut output, mut relay) = (Vec::new(), Vec::new(), Vec::new());
-    let mut crossings = 0usize;
-    let mut last_sign = 0i8;
+    // Relay switches (two per cycle; hysteresis makes them immune to noise): stop after the
+    // asked cycles plus the two the evaluation skips as transient, and one spare.
+    let mut switches = 0usize;
+    let wanted = 2 * (opts.cycles + 3);
     let apply = |w: &mut World, u: f64| match target {
         Target::Leg(i) => w.extra_w[i] = u,
         Target::TiltAxis(k) => {
@@ -569,7 +571,7 @@ pub fn run_relay_test(
         }
     };
     apply(&mut w, u);
-    while w.time_s() < total && crossings < 2 * opts.cycles + 2 {
+    while w.time_s() < total && switches < wanted {
         let o = w.tick();
         let y = w.output(target, &o) - r;
         if !y.is_finite() {
@@ -582,15 +584,12 @@ pub fn run_relay_test(
         let e = -y;
         if e > eps && u < 0.0 {
             u = d;
+            switches += 1;
         } else if e < -eps && u > 0.0 {
             u = -d;
+            switches += 1;
         }
         apply(&mut w, u);
-        let s = if y > 0.0 { 1 } else { -1 };
-        if s != last_sign {
-            crossings += 1;
-            last_sign = s;
-        }
         if w.sample % (600 * w.samples_per_tick) == 0 {
             progress(w.time_s(), total);
         }

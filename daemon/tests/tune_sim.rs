@@ -202,3 +202,34 @@ fn relay_test_stays_within_its_bounds() {
         tune::run_relay_test(&cfg, Target::TiltAxis(0), 600.0, &bad, &mut |_, _| {}).unwrap_err();
     assert!(e.to_string().contains("output limit"), "{e}");
 }
+
+#[test]
+fn command_line_prints_json_and_refuses_bad_loops() {
+    let run = |args: &[&str]| {
+        std::process::Command::new(env!("CARGO_BIN_EXE_stiltd"))
+            .args(args)
+            .output()
+            .expect("run stiltd")
+    };
+    let o = run(&["tune", "--loop", "leg:B", "--json"]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON");
+    assert_eq!(v["loop_name"], "leg B temperature loop");
+    assert_eq!(v["units"][0], "W");
+    assert!(v["model"]["gain"].as_f64().unwrap() > 2.0);
+    assert!(v["proposals"][0]["rule"].as_str().unwrap().contains("SIMC"));
+    assert!(v["toml"].as_str().unwrap().contains("[control.leg_loop]"));
+    let o = run(&["tune", "--loop", "tilt:y"]);
+    let table = String::from_utf8_lossy(&o.stdout);
+    assert!(table.contains("Ziegler–Nichols") && table.contains("[control.tilt_loop]"));
+    assert!(table.contains("paste these lines"));
+    for bad in [
+        &["tune", "--loop", "leg:Q"][..],
+        &["tune", "--loop", "leg:A", "--step", "3"],
+        &["tune", "--record", "10s"],
+    ] {
+        let o = run(bad);
+        assert_eq!(o.status.code(), Some(2), "{bad:?}");
+        assert!(!o.stderr.is_empty());
+    }
+}
