@@ -302,6 +302,8 @@ fn report_figures_match_injected_signals_and_direct_computation() {
     };
     let r2 = report::compute(&set, &w, &mut |_, _| {}).expect("windowed report");
     assert_eq!(r2.tilt_rows, N_TILT / 2);
+    // The Welch segment shrinks with the window (a quarter of its rows: 9000 → 8192).
+    assert_eq!(r2.axes[0].asd.as_ref().expect("asd").segment_len, 8192);
 
     // The table names units.
     let t = report::render(&r);

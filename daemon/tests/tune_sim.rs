@@ -193,6 +193,15 @@ fn relay_test_stays_within_its_bounds() {
             .iter()
             .any(|p| p.rule.contains("ultimate gain PI"))
     );
+    // A leg relay: ±d around the manual power, inside the heater's range by construction.
+    let leg = tune::run_relay_test(&cfg, Target::Leg(0), 3.0 * 3600.0, &opts, &mut |_, _| {})
+        .expect("leg relay test");
+    assert!(leg.amplitude <= cfg.control.manual_power_w);
+    assert!(cfg.control.manual_power_w + leg.amplitude <= cfg.legs[0].heater_max_power_w);
+    let rec = tune::run_step_test(&cfg, &StepOptions::new(Target::Leg(0)), &mut |_, _| {})
+        .expect("leg step");
+    let lr = tune::analyse(&cfg, &rec, Some(&leg)).expect("leg analyse");
+    assert!(lr.relay.expect("leg relay report").cycles >= 4);
     // Too large an amplitude is refused, naming the limit.
     let bad = RelayOptions {
         amplitude: Some(1e3),

@@ -408,7 +408,25 @@ pub fn compute(
         .get(dts.len() / 2)
         .map(|d| 1.0 / d)
         .or(cfg.as_ref().map(|c| c.tiltmeter.rate_hz));
-    let est_tilt_rows: u64 = segs.iter().map(|s| s.rows_at_last_update.0).sum();
+    // Rows in the window, estimated from each segment's row count and time range.
+    let est_tilt_rows: u64 = segs
+        .iter()
+        .map(|s| {
+            let n = s.rows_at_last_update.0;
+            match s.utc_range_ns {
+                Some((lo, hi)) if hi > lo => {
+                    let a = opts.window.from_utc_ns.map_or(lo, |f| f.max(lo));
+                    let b = opts.window.to_utc_ns.map_or(hi, |t| t.min(hi));
+                    if b <= a {
+                        0
+                    } else {
+                        (n as f64 * (b - a) as f64 / (hi - lo) as f64) as u64
+                    }
+                }
+                _ => n,
+            }
+        })
+        .sum();
     let (welch_cfg, welch_err) = match rate_hz {
         Some(fs) => {
             let want = (opts.asd_segment_s * fs).max(16.0) as usize;
