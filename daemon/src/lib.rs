@@ -6,7 +6,8 @@
 //! - [`demo`]: `stiltd demo` and its summary;
 //! - [`rows`]: the domain rows and the [`rows::RowSink`] trait;
 //! - [`status`]: the live state and the change requests the outside world exchanges with the loop;
-//! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits.
+//! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits;
+//! - [`report`]: `stiltd report` (run statistics, JSON, plots); [`tune`]: step and relay tests.
 //!
 //! The binaries (`src/bin/`) are thin: they parse the command line and call into here.
 
@@ -17,7 +18,9 @@ pub mod demo;
 pub mod logging;
 pub mod pipeline;
 pub mod record;
+pub mod report;
 pub mod rows;
 pub mod runtime;
 pub mod sim;
 pub mod status;
+pub mod tune;

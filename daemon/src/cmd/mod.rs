@@ -11,6 +11,8 @@ use stilt_config::ConfigErrors;
 pub mod check;
 pub mod demo;
 pub mod export;
+pub mod report;
+pub mod tune;
 
 /// Every `stiltd` subcommand.
 #[derive(clap::Subcommand, Debug)]
@@ -21,6 +23,10 @@ pub enum Command {
     Demo(demo::DemoArgs),
     /// Write recorded segments out as CSV.
     Export(export::ExportArgs),
+    /// Summarise recorded runs: tilt statistics, spectra, Allan deviation, coupling, plots.
+    Report(report::ReportArgs),
+    /// Step-test one loop on the simulated stage, fit a model and propose gains.
+    Tune(tune::TuneArgs),
 }
 
 impl Command {
@@ -30,6 +36,8 @@ impl Command {
             Command::Check(a) => check::run(a),
             Command::Demo(a) => demo::run(a),
             Command::Export(a) => export::run(a),
+            Command::Report(a) => report::run(a),
+            Command::Tune(a) => tune::run(a),
         }
     }
 }
