@@ -549,3 +549,18 @@ pub(crate) fn instruments(
         heater: h,
     })
 }
+
+/// The path a port map file gives for instrument `name` (`tiltmeter`, `thermometer`,
+/// `heater`) now, or `None` if the file is unreadable or does not name it. Used when a
+/// line is reopened: a restarted simulator writes new paths.
+pub fn port_map_port(path: &Path, name: &str) -> Option<String> {
+    let text = std::fs::read_to_string(path).ok()?;
+    let raw: RawPortMap = toml::from_str(&text).ok()?;
+    let p = raw.ports?;
+    match name {
+        "tiltmeter" => p.tiltmeter,
+        "thermometer" => p.thermometer,
+        "heater" => p.heater,
+        _ => None,
+    }
+}

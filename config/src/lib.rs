@@ -25,6 +25,7 @@ pub mod types;
 mod validate;
 
 pub use errors::{ConfigError, ConfigErrors};
+pub use instruments::port_map_port;
 pub use materials::{MATERIALS, Material};
 pub use types::*;
 

@@ -6,10 +6,12 @@
 //! - [`demo`]: `stiltd demo` and its summary;
 //! - [`rows`]: the domain rows and the [`rows::RowSink`] trait;
 //! - [`status`]: the live state and the change requests the outside world exchanges with the loop;
+//! - [`acquire`]: serial acquisition tasks and the `SerialBackend` for real instruments;
 //! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits.
 //!
 //! The binaries (`src/bin/`) are thin: they parse the command line and call into here.
 
+pub mod acquire;
 pub mod analysis;
 pub mod cmd;
 pub mod core;
