@@ -74,6 +74,7 @@ pub struct Pipeline {
     counters: PipelineCounters,
     last_tilt_urad: Option<[f64; 2]>,
     last_leg_temps: Vec<Option<f64>>,
+    last_row: Option<ControlRow>,
 }
 
 impl Pipeline {
@@ -90,6 +91,7 @@ impl Pipeline {
             counters: PipelineCounters::default(),
             last_tilt_urad: None,
             last_leg_temps: Vec::new(),
+            last_row: None,
             cfg,
         };
         let detail = format!(
@@ -112,6 +114,16 @@ impl Pipeline {
     /// The controller (read-only).
     pub fn controller(&self) -> &Controller {
         &self.controller
+    }
+
+    /// The row written at the last tick.
+    pub fn last_row(&self) -> Option<&ControlRow> {
+        self.last_row.as_ref()
+    }
+
+    /// The controller, for changes between ticks that are not [`Command`]s.
+    pub fn controller_mut(&mut self) -> &mut Controller {
+        &mut self.controller
     }
 
     /// Counters so far.
@@ -300,6 +312,7 @@ impl Pipeline {
         };
         self.sink.control(&row);
         self.counters.ticks += 1;
+        self.last_row = Some(row);
         out
     }
 
