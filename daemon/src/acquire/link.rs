@@ -39,7 +39,8 @@ pub trait Opener: Send {
     fn name(&self) -> String;
 }
 
-/// Opens a serial device (or a pty's slave side) with tokio-serial, exclusively, 8N1, and
+/// Opens a serial device (or a pty's slave side) with tokio-serial, exclusively, 8 data
+/// bits, the given parity, 1 stop bit, and
 /// clears its buffers. The path is resolved anew on every open (`resolve`), so a port map
 /// rewritten by a restarted simulator, or a by-id link that moved, is followed.
 pub struct SerialOpener {
@@ -47,6 +48,8 @@ pub struct SerialOpener {
     pub resolve: Box<dyn FnMut() -> String + Send>,
     /// Baud rate.
     pub baud: u32,
+    /// Parity (8 data bits and 1 stop bit always).
+    pub parity: tokio_serial::Parity,
     /// The last path resolved (for status).
     pub last: String,
 }
@@ -58,6 +61,7 @@ impl SerialOpener {
         SerialOpener {
             resolve: Box::new(move || p.clone()),
             baud,
+            parity: tokio_serial::Parity::None,
             last: path,
         }
     }
@@ -69,7 +73,7 @@ impl Opener for SerialOpener {
         self.last = (self.resolve)();
         let port = tokio_serial::new(&self.last, self.baud)
             .data_bits(tokio_serial::DataBits::Eight)
-            .parity(tokio_serial::Parity::None)
+            .parity(self.parity)
             .stop_bits(tokio_serial::StopBits::One)
             .flow_control(tokio_serial::FlowControl::None)
             .open_native_async()

@@ -126,6 +126,8 @@ pub struct Store {
     pub run_offset_s: Option<f64>,
     /// Start of the acquisition clock.
     pub origin: Option<Instant>,
+    /// Fault events raised so far (recoveries not counted).
+    pub fault_events: u64,
 }
 
 /// The shared store, cloned into every task.
@@ -149,6 +151,9 @@ impl Shared {
                 .get(channel)
                 .map(|c| c.name.clone())
                 .unwrap_or_default();
+            if fault {
+                s.fault_events += 1;
+            }
             if s.events.len() >= MAX_EVENTS {
                 s.events.pop_front();
             }
@@ -229,6 +234,12 @@ impl Openers {
             Box::new(SerialOpener {
                 resolve: Box::new(resolve),
                 baud: link.baud,
+                // Modbus RTU's default character format is 8E1 (Modbus over Serial Line §2.5.1).
+                parity: if name == "thermometer" {
+                    tokio_serial::Parity::Even
+                } else {
+                    tokio_serial::Parity::None
+                },
                 last: link.port.clone(),
             })
         };
@@ -386,7 +397,13 @@ impl SerialBackend {
                     .iter()
                     .map(|r| r.filter(|r| t_acq - r.t_acq_s <= stale).map(|r| r.value))
                     .collect(),
-                channels: s.channels.clone(),
+                channels: {
+                    let mut c = s.channels.clone();
+                    if let [.., h, rb] = c.as_mut_slice() {
+                        rb.connected = h.connected;
+                    }
+                    c
+                },
             }
         })
     }
@@ -407,6 +424,27 @@ impl SerialBackend {
             c.volts = vec![0.0; n];
             c.generation += 1;
         });
+    }
+}
+
+impl crate::runtime::Backend for SerialBackend {
+    fn poll(&mut self, now_s: f64) -> crate::runtime::Readings {
+        let r = SerialBackend::poll(self, now_s);
+        crate::runtime::Readings {
+            tilt: r.tilt,
+            leg_temps: r.leg_temps,
+            leg_temp_age_s: r.leg_temp_age_s,
+            readback_power_w: r.readback_power_w,
+            channels: r.channels,
+        }
+    }
+
+    fn apply(&mut self, now_s: f64, power_w: &[f64], drive_v: &[f64]) {
+        SerialBackend::apply(self, now_s, power_w, drive_v);
+    }
+
+    fn safe_off(&mut self) {
+        SerialBackend::safe_off(self);
     }
 }
 
@@ -467,6 +505,11 @@ impl AcqHandle {
     /// Counters now.
     pub fn channels(&self) -> Vec<ChannelStatus> {
         self.shared.with(|s| s.channels.clone())
+    }
+
+    /// Fault events raised so far (port lost, readback mismatch …).
+    pub fn fault_events(&self) -> u64 {
+        self.shared.with(|s| s.fault_events)
     }
 
     /// Legs whose heater readback disagrees with the command now.

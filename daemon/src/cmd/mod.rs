@@ -11,6 +11,8 @@ use stilt_config::ConfigErrors;
 pub mod check;
 pub mod demo;
 pub mod export;
+pub mod hil;
+pub mod run;
 
 /// Every `stiltd` subcommand.
 #[derive(clap::Subcommand, Debug)]
@@ -21,6 +23,10 @@ pub enum Command {
     Demo(demo::DemoArgs),
     /// Write recorded segments out as CSV.
     Export(export::ExportArgs),
+    /// Run the daemon on the serial instruments of a stage file (`[instruments]`).
+    Run(run::RunArgs),
+    /// Run the daemon against the hardware-in-the-loop simulator over real ptys.
+    Hil(hil::HilArgs),
 }
 
 impl Command {
@@ -30,6 +36,8 @@ impl Command {
             Command::Check(a) => check::run(a),
             Command::Demo(a) => demo::run(a),
             Command::Export(a) => export::run(a),
+            Command::Run(a) => run::run(a),
+            Command::Hil(a) => hil::run(a),
         }
     }
 }
