@@ -8,9 +8,12 @@
 //! - [`status`]: the live state and the change requests the outside world exchanges with the loop;
 //! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits;
 //! - [`report`]: `stiltd report` (run statistics, JSON, plots); [`tune`]: step and relay tests.
+//! - [`acquire`]: serial acquisition tasks and the `SerialBackend` for real instruments;
+//! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits.
 //!
 //! The binaries (`src/bin/`) are thin: they parse the command line and call into here.
 
+pub mod acquire;
 pub mod analysis;
 pub mod cmd;
 pub mod core;

@@ -11,7 +11,9 @@ use stilt_config::ConfigErrors;
 pub mod check;
 pub mod demo;
 pub mod export;
+pub mod hil;
 pub mod report;
+pub mod run;
 pub mod tune;
 
 /// Every `stiltd` subcommand.
@@ -27,6 +29,10 @@ pub enum Command {
     Report(report::ReportArgs),
     /// Step-test one loop on the simulated stage, fit a model and propose gains.
     Tune(tune::TuneArgs),
+    /// Run the daemon on the serial instruments of a stage file (`[instruments]`).
+    Run(run::RunArgs),
+    /// Run the daemon against the hardware-in-the-loop simulator over real ptys.
+    Hil(hil::HilArgs),
 }
 
 impl Command {
@@ -38,6 +44,8 @@ impl Command {
             Command::Export(a) => export::run(a),
             Command::Report(a) => report::run(a),
             Command::Tune(a) => tune::run(a),
+            Command::Run(a) => run::run(a),
+            Command::Hil(a) => hil::run(a),
         }
     }
 }
