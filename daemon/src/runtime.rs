@@ -42,8 +42,8 @@ use crate::pipeline::{Command, Pipeline, PipelineCounters};
 use crate::rows::{ControlRow, EventKind, Quality, RowSink, SinkReport};
 use crate::sim::TickReport;
 use crate::status::{
-    Applied, AxisStatus, ChannelStatus, ControlRequest, Handles, LegStatus, LoopTiming,
-    RecordingStatus, Refused, Request, Status,
+    AlarmStatus, Applied, AxisStatus, ChannelStatus, ControlRequest, Handles, LegStatus,
+    LoopTiming, RecordingStatus, Refused, Request, Status,
 };
 
 /// Readings gathered since the last tick, and instrument counters.
@@ -270,6 +270,7 @@ impl Loop {
         self.timing.jitter_max_s = self.timing.jitter_max_s.max(j);
         if dt_wall > 1.5 * period_wall {
             self.timing.overruns += 1;
+            self.pipeline.note_overrun();
         }
         let mut v: Vec<f64> = self.jitter.iter().copied().collect();
         v.sort_by(f64::total_cmp);
@@ -287,6 +288,7 @@ impl Loop {
                 self.last_tilt_ok_s = Some(t);
             }
         }
+        self.pipeline.set_readback(&r.readback_power_w);
         let out = self.pipeline.on_tick(now_s, &r.leg_temps);
         self.backend.apply(now_s, &out.power_w, &out.drive_v);
         self.backend.after_tick(now_s, &out);
@@ -358,7 +360,22 @@ impl Loop {
                 / out.leg_setpoint_c.len().max(1) as f64,
             leg_bias_target_c: c.leg_bias_c,
             legs,
-            alarms: Vec::new(),
+            alarms: self
+                .pipeline
+                .alarms()
+                .iter()
+                .map(|a| AlarmStatus {
+                    id: a.id.clone(),
+                    message: a.message.clone(),
+                    since_utc_ns: self
+                        .opts
+                        .start_utc_ns
+                        .saturating_add((a.since_s * 1e9) as i64),
+                    active: a.active,
+                    latched: true,
+                    acknowledged_by: a.acknowledged_by.clone(),
+                })
+                .collect(),
             timing: self.timing.clone(),
             recording: self
                 .opts
@@ -443,11 +460,16 @@ impl Loop {
                 Command::SetLegGains(g)
             }
             ControlRequest::Acknowledge(id) => {
-                // Alarms arrive with the interlocks; until then there is nothing to acknowledge.
-                return match id {
-                    Some(id) => refuse("id", format!("no alarm `{id}` is active or latched")),
-                    None => Ok(Applied {
+                return match self.pipeline.acknowledge(now_s, id.as_deref(), &source) {
+                    Ok(done) if done.is_empty() => Ok(Applied {
                         detail: "no alarms to acknowledge".into(),
+                    }),
+                    Ok(done) => Ok(Applied {
+                        detail: format!("acknowledged {}", done.join(", ")),
+                    }),
+                    Err(message) => Err(Refused {
+                        field: "id".into(),
+                        message,
                     }),
                 };
             }

@@ -10,6 +10,7 @@ use stilt_config::ConfigErrors;
 
 pub mod check;
 pub mod demo;
+pub mod export;
 pub mod report;
 pub mod tune;
 
@@ -24,6 +25,8 @@ pub enum Command {
     Report(report::ReportArgs),
     /// Step-test one loop on the simulated stage, fit a model and propose gains.
     Tune(tune::TuneArgs),
+    /// Write recorded segments out as CSV.
+    Export(export::ExportArgs),
 }
 
 impl Command {
@@ -34,6 +37,7 @@ impl Command {
             Command::Demo(a) => demo::run(a),
             Command::Report(a) => report::run(a),
             Command::Tune(a) => tune::run(a),
+            Command::Export(a) => export::run(a),
         }
     }
 }

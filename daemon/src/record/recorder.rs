@@ -679,8 +679,13 @@ impl RowSink for RecorderSink {
     fn control(&mut self, r: &ControlRow) {
         self.last_stamp = r.stamp;
         self.cur.control.push(r.clone());
-        // One batch per control tick keeps the queue's latency at one tick.
-        self.submit();
+        if self.blocking {
+            // Virtual time: latency does not matter, batch size does.
+            self.after_push();
+        } else {
+            // One batch per control tick keeps the queue's latency at one tick.
+            self.submit();
+        }
     }
 
     fn event(&mut self, e: &EventRow) {
