@@ -353,7 +353,12 @@ fn checked_step(cfg: &Config, target: Target, step: Option<f64>) -> Result<f64, 
             }
             Ok(d)
         }
-        Target::TiltAxis(_) => {
+        Target::TiltAxis(k) => {
+            if k > 1 {
+                return Err(TuneError::Options(format!(
+                    "no tilt axis {k}: the axes are 0 (x) and 1 (y)"
+                )));
+            }
             let lim = cfg.control.tilt_output_limit_urad;
             let d = step.unwrap_or(2.0_f64.min(0.5 * lim));
             if !d.is_finite() || d == 0.0 || d.abs() > lim {
@@ -1017,6 +1022,8 @@ mod tests {
         assert!(checked_step(&cfg, Target::Leg(0), Some(f64::NAN)).is_err());
         assert_eq!(checked_step(&cfg, Target::Leg(0), None).unwrap(), 0.25);
         assert!(checked_step(&cfg, Target::TiltAxis(0), Some(100.0)).is_err());
+        assert!(checked_step(&cfg, Target::TiltAxis(2), None).is_err());
+        assert!(checked_step(&cfg, Target::Leg(3), None).is_err());
         assert_eq!(checked_step(&cfg, Target::TiltAxis(1), None).unwrap(), 2.0);
     }
 

@@ -343,6 +343,24 @@ fn report_figures_match_injected_signals_and_direct_computation() {
         assert!(svg.contains("<svg") && svg.len() > 5_000, "{name}.svg");
         assert!(svg.contains("tilt"), "{name}.svg has labels");
     }
+    // A window on the command line, as an offset from the first segment's start.
+    let json2 = dir.join("second-hour.json");
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_stiltd"))
+        .arg("report")
+        .arg(&dir)
+        .args(["--from", "+1h", "--json"])
+        .arg(&json2)
+        .output()
+        .expect("run stiltd report --from");
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let v2: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&json2).expect("json")).expect("parse");
+    assert_eq!(v2["tilt_rows"], N_TILT / 2);
+    assert_eq!(v2["window"][0], "2024-03-01T01:00:00.000000000Z");
     let asd_svg = std::fs::read_to_string(plots.join("tilt_asd.svg")).unwrap();
     assert!(asd_svg.contains("ASD (rad/√Hz)") && asd_svg.contains("frequency (Hz)"));
     let allan_svg = std::fs::read_to_string(plots.join("tilt_allan.svg")).unwrap();
