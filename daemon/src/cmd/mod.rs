@@ -33,8 +33,6 @@ pub enum Command {
     Run(run::RunArgs),
     /// Run the daemon against the hardware-in-the-loop simulator over real ptys.
     Hil(hil::HilArgs),
-    /// Write recorded segments out as CSV.
-    Export(export::ExportArgs),
 }
 
 impl Command {
@@ -48,9 +46,6 @@ impl Command {
             Command::Tune(a) => tune::run(a),
             Command::Run(a) => run::run(a),
             Command::Hil(a) => hil::run(a),
-            Command::Report(a) => report::run(a),
-            Command::Tune(a) => tune::run(a),
-            Command::Export(a) => export::run(a),
         }
     }
 }
