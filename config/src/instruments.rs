@@ -145,6 +145,14 @@ fn link(
     })
 }
 
+/// An optional `stuck_after_s` (absent: no check).
+fn stuck_after(v: &mut V<'_>, key: &str, raw: Option<f64>) -> Option<Option<f64>> {
+    match raw {
+        None => Some(None),
+        Some(x) => v.num(key, Some(x), None, above(0.0, 86_400.0)).map(Some),
+    }
+}
+
 /// One line-protocol field; `default` is used when the table is absent.
 fn field(
     v: &mut V<'_>,
@@ -312,11 +320,13 @@ fn tiltmeter(
             None
         }
     };
+    let stuck = stuck_after(v, "instruments.tiltmeter.stuck_after_s", t.stuck_after_s);
     Some(TiltmeterLink {
         link: link?,
         poll_hz: poll?,
         spec: spec?,
         bad_status_mask: mask? as u32,
+        stuck_after_s: stuck?,
     })
 }
 
@@ -384,12 +394,14 @@ fn thermometer(
             }
         }
     }
+    let stuck = stuck_after(v, "instruments.thermometer.stuck_after_s", t.stuck_after_s);
     Some(ThermometerLink {
         link: link?,
         unit: unit? as u8,
         sensor: sensor?,
         poll_hz: poll?,
         stale_after_s: stale?,
+        stuck_after_s: stuck?,
     })
 }
 

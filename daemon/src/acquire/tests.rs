@@ -676,3 +676,14 @@ fn backoff_doubles_to_its_limit_and_resets() {
     b.reset();
     assert_eq!(b.next_delay().as_millis(), 100);
 }
+
+#[test]
+fn a_repeating_value_is_timed_from_its_first_sighting() {
+    let mut s = super::tilt::Stuck::default();
+    assert_eq!(s.repeats_for([1.0, 2.0], 0.0), 0.0);
+    assert_eq!(s.repeats_for([1.0, 2.0], 0.5), 0.5);
+    assert_eq!(s.repeats_for([1.0, 2.0], 1.25), 1.25);
+    // A new value starts over.
+    assert_eq!(s.repeats_for([1.0, 2.01], 1.5), 0.0);
+    assert_eq!(s.repeats_for([1.0, 2.01], 2.0), 0.5);
+}
