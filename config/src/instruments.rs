@@ -487,24 +487,24 @@ pub(crate) fn instruments(
         }),
         (None, None) => None,
     };
+    // A port map that cannot be used is reported, and the rest is still checked (without it).
+    let mut map_ok = true;
     let map = match &map_path {
-        Some(p) => {
-            let before = v.errors.len();
-            match read_port_map(p, &mut v.errors) {
-                Some(m) => m,
-                None => {
-                    // Say where the port map was named, too.
-                    if v.errors.len() > before && opts.port_map.is_none() {
-                        v.err(
-                            "instruments.port_map",
-                            format!("the port map {} could not be used", p.display()),
-                            "an existing port map file, relative to this configuration file",
-                        );
-                    }
-                    return None;
+        Some(p) => match read_port_map(p, &mut v.errors) {
+            Some(m) => m,
+            None => {
+                map_ok = false;
+                // Say where the port map was named, too.
+                if opts.port_map.is_none() {
+                    v.err(
+                        "instruments.port_map",
+                        format!("the port map {} could not be used", p.display()),
+                        "an existing port map file, relative to this configuration file",
+                    );
                 }
+                PortMap::default()
             }
-        }
+        },
         None => PortMap::default(),
     };
     let need = |v: &mut V<'_>, name: &str| {
@@ -535,6 +535,9 @@ pub(crate) fn instruments(
         }
     };
     let (t, th, h) = (t?, th?, h?);
+    if !map_ok {
+        return None;
+    }
     // Ports are opened exclusively: two instruments cannot share one.
     let ports = [
         ("tiltmeter", &t.link.port),
