@@ -80,7 +80,8 @@ fn count(v: &Value, name: &str, key: &str) -> u64 {
 fn reply_faults_are_flagged_counted_and_recovered_from() {
     // Invented schedule (simulated seconds): the tiltmeter is silent from 2 s to 5 s and
     // the thermometer's CRCs are wrong from 2 s to 7 s; leg B's heater is open from 8 s to
-    // 11 s, while the tiltmeter repeats its last value; 3 s of normal running follow.
+    // 11 s, while the tiltmeter repeats its last value and the thermometer answers 400 ms
+    // late (its timeout is 150 ms); 3 s of normal running follow.
     let faults = r#"
 [[fault]]
 device = "tiltmeter"
@@ -106,6 +107,13 @@ device = "tiltmeter"
 kind = "stuck_value"
 at_s = 8
 duration_s = 3
+
+[[fault]]
+device = "thermometer"
+kind = "late_reply"
+at_s = 8
+duration_s = 3
+delay_ms = 400
 "#;
     let (status, summary, stderr) = hil(
         "hil-reply-faults",
