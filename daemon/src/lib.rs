@@ -16,6 +16,7 @@ pub mod analysis;
 pub mod cmd;
 pub mod core;
 pub mod demo;
+pub mod logging;
 pub mod pipeline;
 pub mod record;
 pub mod rows;

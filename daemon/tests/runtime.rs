@@ -196,25 +196,6 @@ async fn reload_without_a_file_is_refused() {
     task.await.unwrap().unwrap();
 }
 
-/// A sink whose rows the test can read after the run.
-#[derive(Clone, Default)]
-struct Shared(Arc<std::sync::Mutex<MemorySink>>);
-
-impl stilt_daemon::rows::RowSink for Shared {
-    fn tilt(&mut self, s: &stilt_daemon::rows::TiltSample) {
-        self.0.lock().unwrap().tilt(s);
-    }
-    fn control(&mut self, r: &stilt_daemon::rows::ControlRow) {
-        self.0.lock().unwrap().control(r);
-    }
-    fn event(&mut self, e: &stilt_daemon::rows::EventRow) {
-        self.0.lock().unwrap().event(e);
-    }
-    fn finish(&mut self) -> Result<stilt_daemon::rows::SinkReport, stilt_daemon::rows::SinkError> {
-        self.0.lock().unwrap().finish()
-    }
-}
-
 #[tokio::test(start_paused = true)]
 async fn reload_applies_gains_and_setpoints_refuses_structure_and_audits() {
     let dir = std::env::temp_dir().join(format!("stilt-reload-{}", std::process::id()));
@@ -222,7 +203,7 @@ async fn reload_applies_gains_and_setpoints_refuses_structure_and_audits() {
     let path = dir.join("stage.toml");
     std::fs::write(&path, stilt_config::DEMO_SCENARIO).unwrap();
     let cfg = demo();
-    let sink = Shared::default();
+    let sink = stilt_daemon::rows::SharedSink::default();
     let opts = RuntimeOptions {
         duration_s: Some(60.0),
         config_path: Some(path.clone()),
@@ -276,7 +257,7 @@ async fn reload_applies_gains_and_setpoints_refuses_structure_and_audits() {
     assert_eq!(h.status.borrow().axes[1].target_urad, 0.5);
     task.await.unwrap().unwrap();
 
-    let events = sink.0.lock().unwrap().events.clone();
+    let events = sink.events();
     let audited: Vec<_> = events.iter().filter(|e| e.source == "api:tester").collect();
     assert!(
         audited
