@@ -23,8 +23,8 @@ pub struct RawConfig {
     pub recording: Option<RawRecording>,
     pub network: Option<RawNetwork>,
     pub simulation: Option<RawSimulation>,
-    pub instruments: Option<RawInstruments>,
     pub interlocks: Option<RawInterlocks>,
+    pub instruments: Option<RawInstruments>,
 }
 
 /// `[instruments]`: the serial instruments of a real stage (or of the HIL simulator).
@@ -377,8 +377,8 @@ fn allowed_keys(path: &str) -> String {
             "recording",
             "network",
             "simulation",
-            "instruments",
             "interlocks",
+            "instruments",
         ],
         "instruments" => &["port_map", "tiltmeter", "thermometer", "heater"],
         "instruments.tiltmeter" => &[

@@ -181,6 +181,7 @@ pub(crate) fn validate(
     let recording = recording(&mut v, raw.recording.unwrap_or_default());
     let network = network(&mut v, raw.network.unwrap_or_default());
     let simulation = simulation(&mut v, raw.simulation.unwrap_or_default());
+    let interlocks = interlocks(&mut v, raw.interlocks.unwrap_or_default());
     let instruments = match raw.instruments {
         None => Some(None),
         Some(i) => {
@@ -188,7 +189,6 @@ pub(crate) fn validate(
                 .map(Some)
         }
     };
-    let interlocks = interlocks(&mut v, raw.interlocks.unwrap_or_default());
 
     // Rules across sections, checked only when their parts were valid.
     if let (Some(tm), Some(c)) = (&tiltmeter, &control) {
@@ -268,8 +268,8 @@ pub(crate) fn validate(
         Some(recording),
         Some(network),
         Some(simulation),
-        Some(instruments),
         Some(interlocks),
+        Some(instruments),
     ) = (
         legs,
         tiltmeter,
@@ -278,8 +278,8 @@ pub(crate) fn validate(
         recording,
         network,
         simulation,
-        instruments,
         interlocks,
+        instruments,
     )
     else {
         // Every `None` above pushed an error, so this branch is unreachable in practice;
@@ -299,8 +299,8 @@ pub(crate) fn validate(
         recording,
         network,
         simulation,
-        instruments,
         interlocks,
+        instruments,
         source_text: text.to_string(),
     })
 }

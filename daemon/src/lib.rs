@@ -6,6 +6,8 @@
 //! - [`demo`]: `stiltd demo` and its summary;
 //! - [`rows`]: the domain rows and the [`rows::RowSink`] trait;
 //! - [`status`]: the live state and the change requests the outside world exchanges with the loop;
+//! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits;
+//! - [`report`]: `stiltd report` (run statistics, JSON, plots); [`tune`]: step and relay tests.
 //! - [`acquire`]: serial acquisition tasks and the `SerialBackend` for real instruments;
 //! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits.
 //!
@@ -19,7 +21,9 @@ pub mod demo;
 pub mod logging;
 pub mod pipeline;
 pub mod record;
+pub mod report;
 pub mod rows;
 pub mod runtime;
 pub mod sim;
 pub mod status;
+pub mod tune;

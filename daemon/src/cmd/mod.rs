@@ -12,7 +12,9 @@ pub mod check;
 pub mod demo;
 pub mod export;
 pub mod hil;
+pub mod report;
 pub mod run;
+pub mod tune;
 
 /// Every `stiltd` subcommand.
 #[derive(clap::Subcommand, Debug)]
@@ -23,6 +25,10 @@ pub enum Command {
     Demo(demo::DemoArgs),
     /// Write recorded segments out as CSV.
     Export(export::ExportArgs),
+    /// Summarise recorded runs: tilt statistics, spectra, Allan deviation, coupling, plots.
+    Report(report::ReportArgs),
+    /// Step-test one loop on the simulated stage, fit a model and propose gains.
+    Tune(tune::TuneArgs),
     /// Run the daemon on the serial instruments of a stage file (`[instruments]`).
     Run(run::RunArgs),
     /// Run the daemon against the hardware-in-the-loop simulator over real ptys.
@@ -36,6 +42,8 @@ impl Command {
             Command::Check(a) => check::run(a),
             Command::Demo(a) => demo::run(a),
             Command::Export(a) => export::run(a),
+            Command::Report(a) => report::run(a),
+            Command::Tune(a) => tune::run(a),
             Command::Run(a) => run::run(a),
             Command::Hil(a) => hil::run(a),
         }
