@@ -145,6 +145,14 @@ fn link(
     })
 }
 
+/// An optional `stuck_after_s` (absent: no check).
+fn stuck_after(v: &mut V<'_>, key: &str, raw: Option<f64>) -> Option<Option<f64>> {
+    match raw {
+        None => Some(None),
+        Some(x) => v.num(key, Some(x), None, above(0.0, 86_400.0)).map(Some),
+    }
+}
+
 /// One line-protocol field; `default` is used when the table is absent.
 fn field(
     v: &mut V<'_>,
@@ -312,11 +320,13 @@ fn tiltmeter(
             None
         }
     };
+    let stuck = stuck_after(v, "instruments.tiltmeter.stuck_after_s", t.stuck_after_s);
     Some(TiltmeterLink {
         link: link?,
         poll_hz: poll?,
         spec: spec?,
         bad_status_mask: mask? as u32,
+        stuck_after_s: stuck?,
     })
 }
 
@@ -384,12 +394,14 @@ fn thermometer(
             }
         }
     }
+    let stuck = stuck_after(v, "instruments.thermometer.stuck_after_s", t.stuck_after_s);
     Some(ThermometerLink {
         link: link?,
         unit: unit? as u8,
         sensor: sensor?,
         poll_hz: poll?,
         stale_after_s: stale?,
+        stuck_after_s: stuck?,
     })
 }
 
@@ -475,24 +487,24 @@ pub(crate) fn instruments(
         }),
         (None, None) => None,
     };
+    // A port map that cannot be used is reported, and the rest is still checked (without it).
+    let mut map_ok = true;
     let map = match &map_path {
-        Some(p) => {
-            let before = v.errors.len();
-            match read_port_map(p, &mut v.errors) {
-                Some(m) => m,
-                None => {
-                    // Say where the port map was named, too.
-                    if v.errors.len() > before && opts.port_map.is_none() {
-                        v.err(
-                            "instruments.port_map",
-                            format!("the port map {} could not be used", p.display()),
-                            "an existing port map file, relative to this configuration file",
-                        );
-                    }
-                    return None;
+        Some(p) => match read_port_map(p, &mut v.errors) {
+            Some(m) => m,
+            None => {
+                map_ok = false;
+                // Say where the port map was named, too.
+                if opts.port_map.is_none() {
+                    v.err(
+                        "instruments.port_map",
+                        format!("the port map {} could not be used", p.display()),
+                        "an existing port map file, relative to this configuration file",
+                    );
                 }
+                PortMap::default()
             }
-        }
+        },
         None => PortMap::default(),
     };
     let need = |v: &mut V<'_>, name: &str| {
@@ -523,6 +535,9 @@ pub(crate) fn instruments(
         }
     };
     let (t, th, h) = (t?, th?, h?);
+    if !map_ok {
+        return None;
+    }
     // Ports are opened exclusively: two instruments cannot share one.
     let ports = [
         ("tiltmeter", &t.link.port),

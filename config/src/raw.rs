@@ -56,6 +56,7 @@ pub struct RawTiltmeterLink {
     pub y: Option<RawLineField>,
     pub status: Option<RawLineField>,
     pub bad_status_mask: Option<i64>,
+    pub stuck_after_s: Option<f64>,
 }
 
 /// One value of a line-protocol reply: by delimiter and index, or by pattern.
@@ -81,6 +82,7 @@ pub struct RawThermometerLink {
     pub timeout_ms: Option<i64>,
     pub retries: Option<i64>,
     pub stale_after_s: Option<f64>,
+    pub stuck_after_s: Option<f64>,
 }
 
 /// `[instruments.heater]`: the SCPI heater supply.
@@ -393,6 +395,7 @@ fn allowed_keys(path: &str) -> String {
             "y",
             "status",
             "bad_status_mask",
+            "stuck_after_s",
         ],
         "instruments.tiltmeter.x" | "instruments.tiltmeter.y" | "instruments.tiltmeter.status" => {
             &["delimiter", "index", "pattern", "scale", "offset"]
@@ -406,6 +409,7 @@ fn allowed_keys(path: &str) -> String {
             "timeout_ms",
             "retries",
             "stale_after_s",
+            "stuck_after_s",
         ],
         "instruments.heater" => &[
             "port",

@@ -368,6 +368,9 @@ pub struct TiltmeterLink {
     pub spec: stilt_protocol::line::LineSpec,
     /// Status bits that mark a reading out of range (0 = status ignored).
     pub bad_status_mask: u32,
+    /// Readings that repeat exactly for this long are stale (a stuck sensor or firmware);
+    /// `None`: not checked.
+    pub stuck_after_s: Option<f64>,
 }
 
 /// A platinum RTD type (IEC 60751 coefficients, R0 at 0 °C).
@@ -421,6 +424,8 @@ pub struct ThermometerLink {
     pub poll_hz: f64,
     /// A temperature older than this is stale, seconds.
     pub stale_after_s: f64,
+    /// A channel whose resistance repeats exactly for this long is stale; `None`: not checked.
+    pub stuck_after_s: Option<f64>,
 }
 
 /// The heater supply's line.

@@ -49,6 +49,8 @@ fn the_hil_example_takes_its_ports_from_the_port_map() {
     assert_eq!(i.thermometer.sensor, RtdSensor::Pt100);
     assert_eq!(i.tiltmeter.poll_hz, 10.0);
     assert_eq!(i.tiltmeter.link.timeout_ms, 80);
+    assert_eq!(i.tiltmeter.stuck_after_s, Some(1.0));
+    assert_eq!(i.thermometer.stuck_after_s, Some(5.0));
     // The default line protocol reads our invented tiltmeter format in raw units.
     let spec = &i.tiltmeter.spec;
     assert_eq!(spec.query(), b"TLT?\r");
@@ -69,6 +71,10 @@ fn the_template_describes_every_instrument_key() {
     assert_eq!(i.heater.readback_tolerance_w, 0.1);
     assert_eq!(i.tiltmeter.bad_status_mask, 1);
     assert_eq!(i.tiltmeter.spec.fields().len(), 3);
+    assert_eq!(
+        i.tiltmeter.stuck_after_s, None,
+        "commented out in the template: no check"
+    );
 }
 
 #[test]

@@ -80,7 +80,8 @@ fn count(v: &Value, name: &str, key: &str) -> u64 {
 fn reply_faults_are_flagged_counted_and_recovered_from() {
     // Invented schedule (simulated seconds): the tiltmeter is silent from 2 s to 5 s and
     // the thermometer's CRCs are wrong from 2 s to 7 s; leg B's heater is open from 8 s to
-    // 11 s; 3 s of normal running follow.
+    // 11 s, while the tiltmeter repeats its last value and the thermometer answers 400 ms
+    // late (its timeout is 150 ms); 3 s of normal running follow.
     let faults = r#"
 [[fault]]
 device = "tiltmeter"
@@ -100,6 +101,19 @@ kind = "open_circuit"
 at_s = 8
 duration_s = 3
 channel = 2
+
+[[fault]]
+device = "tiltmeter"
+kind = "stuck_value"
+at_s = 8
+duration_s = 3
+
+[[fault]]
+device = "thermometer"
+kind = "late_reply"
+at_s = 8
+duration_s = 3
+delay_ms = 400
 "#;
     let (status, summary, stderr) = hil(
         "hil-reply-faults",
@@ -142,6 +156,8 @@ channel = 2
             .any(|s| leg(s, 1, "readback_mismatch") == true),
         "{status:#?}"
     );
+    // A value repeating for stuck_after_s (1 s in the HIL stage) is stale.
+    assert!(status.iter().any(|s| tilt_q(s) == "stale"), "{status:#?}");
     // While a leg temperature is unusable the loop holds that leg's output.
     let held: Vec<f64> = status
         .iter()

@@ -15,6 +15,7 @@ use stilt_protocol::scpi::heater::{self, HeaterReply, HeaterRequest};
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
 use tokio_serial::SerialStream;
 
+use super::link::Outcome;
 use super::*;
 use crate::rows::MemorySink;
 
@@ -675,4 +676,80 @@ fn backoff_doubles_to_its_limit_and_resets() {
     assert_eq!(d, [100, 200, 400, 800, 1600, 3200, 5000, 5000]);
     b.reset();
     assert_eq!(b.next_delay().as_millis(), 100);
+}
+
+#[test]
+fn a_repeating_value_is_timed_from_its_first_sighting() {
+    let mut s = super::tilt::Stuck::default();
+    assert_eq!(s.repeats_for([1.0, 2.0], 0.0), 0.0);
+    assert_eq!(s.repeats_for([1.0, 2.0], 0.5), 0.5);
+    assert_eq!(s.repeats_for([1.0, 2.0], 1.25), 1.25);
+    // A new value starts over.
+    assert_eq!(s.repeats_for([1.0, 2.01], 1.5), 0.0);
+    assert_eq!(s.repeats_for([1.0, 2.01], 2.0), 0.5);
+}
+
+/// Hands out one in-memory stream, then reports the device missing.
+struct DuplexOpener(Option<tokio::io::DuplexStream>);
+
+impl Opener for DuplexOpener {
+    fn open(&mut self) -> std::io::Result<BoxPort> {
+        self.0
+            .take()
+            .map(|s| Box::pin(s) as BoxPort)
+            .ok_or_else(|| std::io::Error::from(std::io::ErrorKind::NotFound))
+    }
+    fn name(&self) -> String {
+        "duplex".into()
+    }
+}
+
+/// The reply timeout and the retry, in virtual time over an in-memory pipe (paused time is
+/// exact here, unlike with real I/O: ecosystem notes §6). The device answers each query
+/// 150 ms and then 50 ms after reading it; the timeout is 100 ms with one retry.
+#[tokio::test(start_paused = true)]
+async fn a_late_reply_times_out_and_the_retry_gets_the_answer_in_virtual_time() {
+    use stilt_protocol::line::LineQuery;
+    use stilt_protocol::session::Session;
+    let (daemon_end, mut dev) = tokio::io::duplex(256);
+    let shared = Shared::default();
+    shared.with(|s| s.channels = vec![ChannelStatus::default(); 4]);
+    let origin = Instant::now();
+    let mut line = link::Line::new(
+        Box::new(DuplexOpener(Some(daemon_end))),
+        shared.clone(),
+        TILTMETER,
+        origin,
+    );
+    let device = tokio::spawn(async move {
+        let mut buf = [0u8; 64];
+        for delay_ms in [150u64, 50] {
+            let n = dev.read(&mut buf).await.unwrap();
+            assert_eq!(&buf[..n], tilt::QUERY);
+            tokio::time::sleep(Duration::from_millis(delay_ms)).await;
+            dev.write_all(b"T,+0001.0000,-0002.0000,20.00,0\r\n")
+                .await
+                .unwrap();
+        }
+        dev
+    });
+    let spec = Arc::new(config().instruments.unwrap().tiltmeter.spec);
+    let mut session =
+        Session::<LineQuery>::new(link::session_config(100, 1, 128, Duration::from_millis(1)));
+    let t0 = Instant::now();
+    let out = line.request(&mut session, LineQuery(spec.clone())).await;
+    let elapsed = t0.elapsed();
+    let Outcome::Reply(r) = out else {
+        panic!("{out:?}")
+    };
+    assert_eq!(spec.value(&r, "x"), Some(1.0));
+    // The first attempt timed out at 100 ms and the retry left at 101 ms; the first reply,
+    // 50 ms after its deadline, arrived while the retry was waiting and was taken as the
+    // answer (these protocols carry no sequence numbers: a value can be up to one timeout
+    // late, never wrong in kind). Virtual time makes this exact.
+    assert_eq!(elapsed, Duration::from_millis(150), "{elapsed:?}");
+    let c = shared.with(|s| s.channels[TILTMETER].clone());
+    assert_eq!((c.requests, c.timeouts, c.bad_frames), (1, 1, 0));
+    assert_eq!(session.stats().retries, 1);
+    let _ = device.await.unwrap();
 }

@@ -4,7 +4,8 @@
 //!
 //! A channel whose status says open, over or under range, whose register holds "no
 //! reading", or whose resistance lies outside the standard's range is `out_of_range`; a
-//! channel still settling (`not ready`) keeps its previous reading. A failed request marks
+//! channel still settling (`not ready`) keeps its previous reading; a resistance repeating
+//! exactly for `stuck_after_s` (if set) is `stale`. A failed request marks
 //! every channel's last failure (timeout or bad frame); see the parent module for how that
 //! becomes a quality.
 
@@ -81,6 +82,7 @@ pub async fn run(
     };
     let mut tick = tokio::time::interval(Duration::from_secs_f64(1.0 / link.poll_hz));
     tick.set_missed_tick_behavior(MissedTickBehavior::Skip);
+    let mut stuck = vec![super::tilt::Stuck::<Option<f64>>::default(); usize::from(count)];
     loop {
         tick.tick().await;
         let fail = |q: Quality| {
@@ -138,7 +140,13 @@ pub async fn run(
                 if st.not_ready() {
                     continue;
                 }
-                let (value, quality) = convert(&sensor, *r, *st);
+                let (value, mut quality) = convert(&sensor, *r, *st);
+                if let Some(limit) = link.stuck_after_s
+                    && quality == Quality::Ok
+                    && stuck[k].repeats_for(*r, t_acq_s) >= limit
+                {
+                    quality = Quality::Stale;
+                }
                 if let Some(slot) = s.temps.get_mut(usize::from(first) + k) {
                     slot.last = Some(Stamped {
                         value,

@@ -4,7 +4,8 @@
 //! Each sample is raw units (fields `x`, `y`; calibration happens in the pipeline with
 //! `Tiltmeter::calibrate`). Quality: `ok`; `out_of_range` when a `bad_status_mask` bit is
 //! set; `timeout` or `bad_frame` when the request failed after its retries (raw NaN). While
-//! the port is closed no samples are pushed: the loop sees the tilt as missing.
+//! the port is closed no samples are pushed: the loop sees the tilt as missing. A reading
+//! that repeats exactly for `stuck_after_s` (if set) is `stale`.
 
 use std::sync::Arc;
 use std::time::Duration;
@@ -56,6 +57,7 @@ pub async fn run(mut line: Line, link: TiltmeterLink, shared: Shared, origin: In
     let mut tick = tokio::time::interval(Duration::from_secs_f64(1.0 / link.poll_hz));
     // A late poll is skipped, not bunched: samples stay evenly spaced.
     tick.set_missed_tick_behavior(MissedTickBehavior::Skip);
+    let mut stuck = Stuck::default();
     loop {
         tick.tick().await;
         let outcome = line.request(&mut session, LineQuery(spec.clone())).await;
@@ -65,10 +67,21 @@ pub async fn run(mut line: Line, link: TiltmeterLink, shared: Shared, origin: In
             Outcome::Failed { .. } | Outcome::Sent => ([f64::NAN; 2], Quality::BadFrame),
             Outcome::Disconnected => continue,
         };
+        let t_acq_s = secs_since(origin);
+        let quality = match (quality, link.stuck_after_s) {
+            (Quality::Ok, Some(limit)) if stuck.repeats_for(value, t_acq_s) >= limit => {
+                Quality::Stale
+            }
+            (Quality::Ok, _) => quality,
+            _ => {
+                stuck = Stuck::default();
+                quality
+            }
+        };
         let sample = Stamped {
             value,
             quality,
-            t_acq_s: secs_since(origin),
+            t_acq_s,
             t_utc_ns: now_utc_ns(),
         };
         shared.with(|s| {
@@ -78,5 +91,25 @@ pub async fn run(mut line: Line, link: TiltmeterLink, shared: Shared, origin: In
             }
             s.tilt.push_back(sample);
         });
+    }
+}
+
+/// Tracks how long a value has repeated exactly (a stuck sensor or firmware repeats its last
+/// reading; real readings of a noisy quantity never repeat for long).
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct Stuck<T> {
+    last: Option<(T, f64)>,
+}
+
+impl<T: PartialEq + Copy> Stuck<T> {
+    /// Feeds `value` seen at `t_s`; returns how long it has been repeating, s (0 for a new value).
+    pub fn repeats_for(&mut self, value: T, t_s: f64) -> f64 {
+        match self.last {
+            Some((v, since)) if v == value => t_s - since,
+            _ => {
+                self.last = Some((value, t_s));
+                0.0
+            }
+        }
     }
 }

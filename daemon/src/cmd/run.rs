@@ -65,21 +65,10 @@ pub fn run(a: &RunArgs) -> ExitCode {
     run_daemon(cfg, Some(a.config.clone()), &a.common)
 }
 
-/// Starts a tracing subscriber on stderr (`RUST_LOG`, default `info`) unless one is set.
-pub(crate) fn init_logging() {
-    let filter = tracing_subscriber::EnvFilter::try_from_default_env()
-        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
-    let _ = tracing_subscriber::fmt()
-        .with_writer(std::io::stderr)
-        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
-        .with_env_filter(filter)
-        .try_init();
-}
-
 /// The daemon on serial instruments, until a signal or `duration`. Exit 0 after a clean
 /// stop, 1 if something failed, 2 for a configuration without instruments.
 pub fn run_daemon(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> ExitCode {
-    init_logging();
+    // Logging is set up by the binary (`crate::logging::init`: the journal under systemd).
     if cfg.instruments.is_none() {
         eprintln!(
             "stiltd: {} has no [instruments] section, so there is nothing to read (see config/examples/hardware-template.toml)",
