@@ -202,7 +202,13 @@ impl Pipeline {
     /// One tiltmeter reading (raw units) with its quality, at time `t_s`.
     pub fn on_tilt(&mut self, t_s: f64, raw: [f64; 2], quality: Quality) {
         let finite = raw[0].is_finite() && raw[1].is_finite();
-        let mut q = if finite { quality } else { Quality::BadFrame };
+        // A reading that is already known bad keeps its own quality (timeout, stale …);
+        // an "ok" reading that is not a number is a bad frame.
+        let mut q = if finite || quality != Quality::Ok {
+            quality
+        } else {
+            Quality::BadFrame
+        };
         let cal = if finite {
             self.cfg.tiltmeter.calibrate(raw)
         } else {

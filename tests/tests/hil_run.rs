@@ -55,3 +55,66 @@ fn hil_without_the_simulator_says_how_to_build_it() {
         "{stderr}"
     );
 }
+
+#[test]
+fn sighup_reloads_the_stage_file_and_a_bad_file_is_refused() {
+    use std::process::{Command, Stdio};
+    use std::time::Duration;
+    let dir = stilt_tests::scratch("hil-sighup");
+    let src = std::fs::read_to_string(workspace().join("config/examples/hil/stage.toml")).unwrap();
+    std::fs::copy(
+        workspace().join("config/examples/hil/hil-ports.toml"),
+        dir.join("hil-ports.toml"),
+    )
+    .unwrap();
+    let stage = dir.join("stage.toml");
+    std::fs::write(&stage, &src).unwrap();
+    let child = command("stiltd", &dir)
+        .args([
+            "hil",
+            "--config",
+            "stage.toml",
+            "--duration",
+            "9",
+            "--out",
+            "rec",
+        ])
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let pid = child.id().to_string();
+    let hup = || {
+        assert!(
+            Command::new("kill")
+                .args(["-HUP", &pid])
+                .status()
+                .unwrap()
+                .success()
+        )
+    };
+    std::thread::sleep(Duration::from_secs(3));
+    // A file that fails validation: refused, the running configuration stays.
+    std::fs::write(&stage, src.replace("kp_w_per_k = 8.0", "kp_w_per_k = -1.0")).unwrap();
+    hup();
+    std::thread::sleep(Duration::from_secs(1));
+    // A good change: applied.
+    std::fs::write(&stage, src.replace("kp_w_per_k = 8.0", "kp_w_per_k = 6.5")).unwrap();
+    hup();
+    let out = child.wait_with_output().unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let ev = command("stiltd", &dir)
+        .args(["export", "rec", "--stream", "events"])
+        .output()
+        .unwrap();
+    let ev = String::from_utf8_lossy(&ev.stdout);
+    assert!(
+        ev.contains("reload refused") && ev.contains("control.leg_loop.kp_w_per_k"),
+        "{ev}"
+    );
+    assert!(ev.contains("api:sighup") && ev.contains("kp=6.5"), "{ev}");
+}

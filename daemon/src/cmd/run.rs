@@ -146,6 +146,12 @@ async fn serve(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> any
 
     let mut term = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
         .context("cannot catch SIGTERM")?;
+    // SIGHUP (systemctl reload) rereads the stage file through the same checked path as
+    // the API's reload: what may change while running is applied bumplessly, anything
+    // else (or a file that fails validation) is refused and the running configuration stays.
+    let mut hup = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::hangup())
+        .context("cannot catch SIGHUP")?;
+    let requests = handles.requests.clone();
     let mut status_rx = handles.status.clone();
     let every = (o.status_every > 0.0 && o.status_every.is_finite())
         .then(|| Duration::from_secs_f64(o.status_every));
@@ -157,6 +163,17 @@ async fn serve(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> any
         tokio::select! {
             _ = term.recv() => { eprintln!("stiltd: SIGTERM, stopping"); shutdown.trigger(); }
             _ = tokio::signal::ctrl_c() => { eprintln!("stiltd: SIGINT, stopping"); shutdown.trigger(); }
+            _ = hup.recv() => {
+                let (tx, rx) = tokio::sync::oneshot::channel();
+                let req = crate::status::Request { change: crate::status::ControlRequest::Reload, who: "sighup".into(), reply: tx };
+                if requests.send(req).await.is_ok() {
+                    match rx.await {
+                        Ok(Ok(a)) => tracing::info!(detail = %a.detail, "reload (SIGHUP) applied"),
+                        Ok(Err(r)) => tracing::error!("reload (SIGHUP) refused, running configuration kept: {}", r.message),
+                        Err(_) => {}
+                    }
+                }
+            }
             _ = printer.tick(), if every.is_some() => {
                 let st = status_rx.borrow_and_update().clone();
                 println!("{}", status_json(&st, &acq));
