@@ -181,12 +181,13 @@ async fn serve(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> any
             r = &mut task => break r,
         }
     };
-    let end = end.context("the control loop panicked")?;
-    // The loop has commanded zero; make sure the supply took it.
+    // Whether the loop ended normally (it has commanded zero) or panicked (it could not),
+    // the heater task is still alive: command zero through it and confirm the supply took it.
     let zeroed = acq.zero_heaters(Duration::from_secs(2)).await;
     if !zeroed {
         tracing::error!("could not confirm heaters at zero: check the supply");
     }
+    let end = end.context("the control loop panicked (heaters commanded to zero)")?;
     let end = end.map_err(|e| anyhow::anyhow!("{e}"))?;
     let last = handles.status.borrow().clone();
     if o.summary_json {
