@@ -6,11 +6,13 @@
 //! - [`demo`]: `stiltd demo` and its summary;
 //! - [`rows`]: the domain rows and the [`rows::RowSink`] trait;
 //! - [`status`]: the live state and the change requests the outside world exchanges with the loop;
-//! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits.
+//! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits;
+//! - [`api`]: the HTTP API (JSON under `/v1`, live stream, metrics, access tokens).
 //!
 //! The binaries (`src/bin/`) are thin: they parse the command line and call into here.
 
 pub mod analysis;
+pub mod api;
 pub mod cmd;
 pub mod core;
 pub mod demo;

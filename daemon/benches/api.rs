@@ -1,0 +1,3 @@
+//! Benchmark of the HTTP API (being written).
+
+fn main() {}

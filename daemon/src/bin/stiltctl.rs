@@ -1,0 +1,3 @@
+//! stiltctl: the command-line client of the HTTP API (being written; prints nothing yet).
+
+fn main() {}
