@@ -29,12 +29,21 @@ pub fn parse_json<T: DeserializeOwned>(bytes: &[u8]) -> Result<T, ApiError> {
             "the body is empty; send a JSON object",
         ));
     }
+    // serde's derived structs also accept a positional array (`[1, 2]`); an API body
+    // names its fields, so anything but an object is refused.
+    if bytes.iter().find(|b| !b.is_ascii_whitespace()) != Some(&b'{') {
+        return Err(ApiError::bad_request(
+            "not_an_object",
+            "the body must be a JSON object, e.g. {\"x_urad\": 1.5}",
+        ));
+    }
     let mut de = serde_json::Deserializer::from_slice(bytes);
     let v: T = serde_path_to_error::deserialize(&mut de).map_err(|e| {
         let path = e.path().to_string();
         let inner = e.into_inner();
         let msg = inner.to_string();
-        let field = if path != "." && !path.is_empty() {
+        // serde_path_to_error writes `.` for the root and `?` where it lost track.
+        let field = if path != "." && !path.is_empty() && !path.contains('?') {
             path
         } else {
             named_in(&msg).unwrap_or_default()

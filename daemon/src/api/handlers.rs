@@ -442,7 +442,7 @@ pub async fn acknowledge(
                 ApiError::new(
                     StatusCode::NOT_FOUND,
                     "unknown_alarm",
-                    format!("no alarm {id:?}; {listed}"),
+                    format!("id: no alarm {id:?}; {listed}"),
                 )
                 .field("id"),
             ));

@@ -46,6 +46,9 @@ pub struct StreamQuery {
 
 struct Live {
     rx: broadcast::Receiver<Arc<ControlRow>>,
+    /// Ends the stream when the control loop has gone (the watch's sender dropped); the
+    /// rows broadcast cannot tell, because the API's own `Handles` keep a sender of it.
+    status: tokio::sync::watch::Receiver<Arc<crate::status::Status>>,
     every: u64,
     state: AppState,
     _permit: OwnedSemaphorePermit,
@@ -118,6 +121,7 @@ pub async fn stream(
     };
     let live = Live {
         rx: st.inner.handles.rows.subscribe(),
+        status: st.inner.handles.status.clone(),
         every,
         state: st.clone(),
         _permit: permit,
@@ -125,7 +129,16 @@ pub async fn stream(
     let first = futures_util::stream::once(async move { json_event("start", &start) });
     let rows = futures_util::stream::unfold(live, |mut live| async move {
         loop {
-            match live.rx.recv().await {
+            let got = tokio::select! {
+                // Rows first, so rows already sent are delivered before the end.
+                biased;
+                r = live.rx.recv() => r,
+                c = live.status.changed() => match c {
+                    Ok(()) => continue,
+                    Err(_) => return None,
+                },
+            };
+            match got {
                 Ok(row) => {
                     if row.tick % live.every == 0 {
                         let ev = json_event("sample", &SampleWire::from(&*row));
