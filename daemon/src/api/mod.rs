@@ -23,6 +23,7 @@
 
 pub mod auth;
 pub mod body;
+pub mod client;
 pub mod error;
 pub mod handlers;
 pub mod metrics;
