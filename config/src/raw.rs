@@ -23,6 +23,7 @@ pub struct RawConfig {
     pub recording: Option<RawRecording>,
     pub network: Option<RawNetwork>,
     pub simulation: Option<RawSimulation>,
+    pub interlocks: Option<RawInterlocks>,
 }
 
 /// `[stage]`
@@ -165,6 +166,32 @@ pub struct RawSimulation {
     pub leg_spread_ratio: Option<f64>,
 }
 
+/// `[interlocks]`: one table per interlock.
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawInterlocks {
+    pub leg_over_temperature: Option<RawInterlock>,
+    pub heater_over_power: Option<RawInterlock>,
+    pub total_power: Option<RawInterlock>,
+    pub sensor_stale: Option<RawInterlock>,
+    pub tilt_out_of_range: Option<RawInterlock>,
+    pub thermometer_disagreement: Option<RawInterlock>,
+    pub heater_open_circuit: Option<RawInterlock>,
+    pub loop_overrun: Option<RawInterlock>,
+}
+
+/// One interlock's settings (which extra keys apply depends on the interlock).
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawInterlock {
+    pub action: Option<String>,
+    pub after_ticks: Option<i64>,
+    pub margin_ratio: Option<f64>,
+    pub max_spread_k: Option<f64>,
+    pub min_ratio: Option<f64>,
+    pub min_power_w: Option<f64>,
+}
+
 /// Deserializes the text into [`RawConfig`], collecting every unknown key as an error
 /// beside the result (so validation can still report the rest).
 pub(crate) fn parse(
@@ -254,6 +281,7 @@ fn allowed_keys(path: &str) -> String {
             "recording",
             "network",
             "simulation",
+            "interlocks",
         ],
         "stage" => &["name"],
         "legs" => &[
@@ -324,6 +352,20 @@ fn allowed_keys(path: &str) -> String {
             "max_stream_clients",
             "change_timeout_ms",
         ],
+        "interlocks" => &[
+            "leg_over_temperature",
+            "heater_over_power",
+            "total_power",
+            "sensor_stale",
+            "tilt_out_of_range",
+            "thermometer_disagreement",
+            "heater_open_circuit",
+            "loop_overrun",
+        ],
+        "interlocks.heater_over_power" => &["action", "after_ticks", "margin_ratio"],
+        "interlocks.thermometer_disagreement" => &["action", "after_ticks", "max_spread_k"],
+        "interlocks.heater_open_circuit" => &["action", "after_ticks", "min_ratio", "min_power_w"],
+        t if t.starts_with("interlocks.") => &["action", "after_ticks"],
         "simulation" => &[
             "seed",
             "ambient_mean_c",

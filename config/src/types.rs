@@ -28,6 +28,8 @@ pub struct Config {
     pub network: Network,
     /// The simulated stage used by `stiltd demo` and the tests.
     pub simulation: Simulation,
+    /// Safety interlocks, evaluated on every tick.
+    pub interlocks: Interlocks,
     /// The exact text this configuration was read from (recorded with each run).
     pub source_text: String,
 }
@@ -269,4 +271,76 @@ pub struct Simulation {
     pub heater_loss_w_per_k: f64,
     /// Relative spread of the legs' thermal properties (0.05 = ±5 %).
     pub leg_spread_ratio: f64,
+}
+
+/// What an interlock does when it trips.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum InterlockAction {
+    /// Freeze the heater outputs at their last values while the condition holds.
+    Hold,
+    /// Clamp the offending quantity (the leg's heater, the total power) while it holds;
+    /// for conditions with nothing to clamp, the same as `hold`.
+    Limit,
+    /// Heaters to zero and the mode to `off`, until a person changes the mode.
+    Safe,
+}
+
+impl InterlockAction {
+    /// Configuration spelling.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            InterlockAction::Hold => "hold",
+            InterlockAction::Limit => "limit",
+            InterlockAction::Safe => "safe",
+        }
+    }
+    /// Parses the configuration spelling.
+    pub fn parse(s: &str) -> Option<Self> {
+        [
+            InterlockAction::Hold,
+            InterlockAction::Limit,
+            InterlockAction::Safe,
+        ]
+        .into_iter()
+        .find(|a| a.as_str() == s)
+    }
+}
+
+/// One interlock: its action and how many consecutive ticks the condition must hold.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct InterlockRule {
+    /// What to do.
+    pub action: InterlockAction,
+    /// Consecutive ticks the condition must hold before it trips (≥ 1).
+    pub after_ticks: u32,
+}
+
+/// Every interlock. Thresholds not listed here come from `[limits]`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Interlocks {
+    /// A leg above `limits.max_leg_temp_c`.
+    pub leg_over_temperature: InterlockRule,
+    /// A heater reading back more than its maximum × `heater_over_power_margin_ratio`.
+    pub heater_over_power: InterlockRule,
+    /// Margin on a heater's maximum before its read-back power counts as too high.
+    pub heater_over_power_margin_ratio: f64,
+    /// The heaters' total above `limits.max_total_power_w`.
+    pub total_power: InterlockRule,
+    /// A sensor the mode needs unusable (stale, timed out, garbled, missing).
+    pub sensor_stale: InterlockRule,
+    /// The tilt outside ±`limits.tilt_range_urad`.
+    pub tilt_out_of_range: InterlockRule,
+    /// Leg thermometers spread more than `thermometer_max_spread_k` from their median.
+    pub thermometer_disagreement: InterlockRule,
+    /// Largest allowed distance of a leg's temperature from the legs' median, K.
+    pub thermometer_max_spread_k: f64,
+    /// A heater commanded ≥ `heater_open_min_power_w` that reads back less than
+    /// `heater_open_min_ratio` of it.
+    pub heater_open_circuit: InterlockRule,
+    /// See `heater_open_circuit`.
+    pub heater_open_min_ratio: f64,
+    /// See `heater_open_circuit`, W.
+    pub heater_open_min_power_w: f64,
+    /// The control loop late for its period.
+    pub loop_overrun: InterlockRule,
 }

@@ -164,6 +164,7 @@ pub(crate) fn validate(
     let recording = recording(&mut v, raw.recording.unwrap_or_default());
     let network = network(&mut v, raw.network.unwrap_or_default());
     let simulation = simulation(&mut v, raw.simulation.unwrap_or_default());
+    let interlocks = interlocks(&mut v, raw.interlocks.unwrap_or_default());
 
     // Rules across sections, checked only when their parts were valid.
     if let (Some(tm), Some(c)) = (&tiltmeter, &control) {
@@ -243,8 +244,9 @@ pub(crate) fn validate(
         Some(recording),
         Some(network),
         Some(simulation),
+        Some(interlocks),
     ) = (
-        legs, tiltmeter, control, limits, recording, network, simulation,
+        legs, tiltmeter, control, limits, recording, network, simulation, interlocks,
     )
     else {
         // Every `None` above pushed an error, so this branch is unreachable in practice;
@@ -264,6 +266,7 @@ pub(crate) fn validate(
         recording,
         network,
         simulation,
+        interlocks,
         source_text: text.to_string(),
     })
 }
@@ -996,5 +999,97 @@ fn simulation(v: &mut V<'_>, s: RawSimulation) -> Option<Simulation> {
         heater_coupling_w_per_k: heater_g?,
         heater_loss_w_per_k: heater_loss?,
         leg_spread_ratio: spread?,
+    })
+}
+
+fn interlocks(v: &mut V<'_>, r: RawInterlocks) -> Option<Interlocks> {
+    use InterlockAction::{Hold, Limit, Safe};
+    // (defaults) Over-temperature and over-power go safe at once; the rest hold the
+    // outputs while a sensor or the loop is unreliable. Common practice, not a standard.
+    let mut rule = |name: &str,
+                    raw: &Option<RawInterlock>,
+                    action: InterlockAction,
+                    ticks: i64|
+     -> Option<InterlockRule> {
+        let p = format!("interlocks.{name}");
+        let raw = raw.as_ref();
+        let action = match raw.and_then(|x| x.action.as_deref()) {
+            None => Some(action),
+            Some(a) => match InterlockAction::parse(a) {
+                Some(a) => Some(a),
+                None => {
+                    v.err(
+                        &format!("{p}.action"),
+                        "unknown interlock action",
+                        "\"hold\", \"limit\" or \"safe\"",
+                    );
+                    None
+                }
+            },
+        };
+        let t = v.int(
+            &format!("{p}.after_ticks"),
+            raw.and_then(|x| x.after_ticks),
+            Some(ticks),
+            1,
+            1_000_000,
+        );
+        Some(InterlockRule {
+            action: action?,
+            after_ticks: t? as u32,
+        })
+    };
+    let lot = rule("leg_over_temperature", &r.leg_over_temperature, Safe, 1);
+    let hop = rule("heater_over_power", &r.heater_over_power, Safe, 3);
+    let tp = rule("total_power", &r.total_power, Limit, 1);
+    let ss = rule("sensor_stale", &r.sensor_stale, Hold, 10);
+    let tor = rule("tilt_out_of_range", &r.tilt_out_of_range, Hold, 5);
+    let td = rule(
+        "thermometer_disagreement",
+        &r.thermometer_disagreement,
+        Hold,
+        10,
+    );
+    let hoc = rule("heater_open_circuit", &r.heater_open_circuit, Hold, 5);
+    let lo = rule("loop_overrun", &r.loop_overrun, Hold, 3);
+    let margin = v.num(
+        "interlocks.heater_over_power.margin_ratio",
+        r.heater_over_power.as_ref().and_then(|x| x.margin_ratio),
+        Some(1.1),
+        between(1.0, 10.0),
+    );
+    let spread = v.num(
+        "interlocks.thermometer_disagreement.max_spread_k",
+        r.thermometer_disagreement
+            .as_ref()
+            .and_then(|x| x.max_spread_k),
+        Some(3.0),
+        above(0.0, 1000.0),
+    );
+    let ratio = v.num(
+        "interlocks.heater_open_circuit.min_ratio",
+        r.heater_open_circuit.as_ref().and_then(|x| x.min_ratio),
+        Some(0.2),
+        above(0.0, 1.0),
+    );
+    let min_p = v.num(
+        "interlocks.heater_open_circuit.min_power_w",
+        r.heater_open_circuit.as_ref().and_then(|x| x.min_power_w),
+        Some(0.1),
+        above(0.0, 1e4),
+    );
+    Some(Interlocks {
+        leg_over_temperature: lot?,
+        heater_over_power: hop?,
+        heater_over_power_margin_ratio: margin?,
+        total_power: tp?,
+        sensor_stale: ss?,
+        tilt_out_of_range: tor?,
+        thermometer_disagreement: td?,
+        thermometer_max_spread_k: spread?,
+        heater_open_circuit: hoc?,
+        heater_open_min_ratio: ratio?,
+        heater_open_min_power_w: min_p?,
+        loop_overrun: lo?,
     })
 }

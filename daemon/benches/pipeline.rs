@@ -42,3 +42,26 @@ fn stage_only_1h() -> f64 {
     }
     divan::black_box(acc)
 }
+
+/// 36 simulated hours, closed loop, every row recorded to compressed HDF5 segments
+/// (blocking sink as in `stiltd demo --speed max`: nothing dropped).
+#[divan::bench(sample_count = 5, sample_size = 1)]
+fn closed_loop_36h_recorded(b: divan::Bencher) {
+    let dir = std::env::temp_dir().join(format!("stilt-bench-rec-{}", std::process::id()));
+    b.bench_local(|| {
+        let _ = std::fs::remove_dir_all(&dir);
+        let cfg = demo();
+        let mut ro = stilt_daemon::record::RecorderOptions::from_config(&cfg);
+        ro.dir = dir.clone();
+        ro.blocking = true;
+        ro.batch_rows = 4096;
+        let (sink, _h) = stilt_daemon::record::Recorder::start(&cfg, ro).expect("recorder");
+        let stage = stilt_hil_sim::SimStage::new(&cfg);
+        let mut sim = SimLoop::new(stage, Pipeline::new(cfg, Box::new(sink), 0));
+        sim.advance_to(36.0 * 3600.0, &mut |_| {});
+        let t = sim.time_s();
+        let (report, _) = sim.into_pipeline().finish(t, "bench").expect("finish");
+        divan::black_box(report.tilt_rows)
+    });
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -11,6 +11,7 @@
 //! what the stage really did — and, beside it, the tilt the controller *measured*
 //! (1 s means of the tiltmeter, which include the instrument's own noise).
 
+use std::sync::{Arc, Mutex};
 use std::time::Instant;
 
 use serde::Serialize;
@@ -19,6 +20,7 @@ use stilt_hil_sim::SimStage;
 
 use crate::pipeline::{Pipeline, PipelineCounters};
 use crate::rows::{CountingSink, RowSink, SinkReport};
+use crate::runtime::{self, RunEnd, RuntimeOptions, SimBackend};
 use crate::sim::{SimLoop, TickReport};
 
 /// How fast the demo runs.
@@ -249,7 +251,7 @@ pub struct DemoOptions {
     /// Virtual time or a wall-clock factor.
     pub speed: Speed,
     /// Progress callback: (simulated seconds done, total).
-    pub progress: Option<Box<dyn FnMut(f64, f64)>>,
+    pub progress: Option<Box<dyn FnMut(f64, f64) + Send>>,
     /// UTC of run time 0, ns since the epoch.
     pub start_utc_ns: i64,
 }
@@ -284,40 +286,46 @@ fn run_virtual(
     (acc, sim)
 }
 
-/// Runs the closed-loop scenario at a wall-clock factor: a timer wakes the loop every
-/// `max(control period / speed, 5 ms)` of wall time and the simulation catches up to
-/// `elapsed × speed`. Missed timer ticks are skipped (`MissedTickBehavior::Skip`)
-/// because the catch-up is by elapsed time, so nothing is lost by skipping.
+/// Runs the closed-loop scenario at a wall-clock factor through the daemon's own
+/// runtime ([`crate::runtime`]) with the simulated stage as its backend — the same loop,
+/// timer and request handling a real stage gets.
 async fn run_paced(
     cfg: &Config,
     sink: Box<dyn RowSink>,
     opts: &mut DemoOptions,
     factor: f64,
-) -> (RunAcc, SimLoop) {
-    let stage = SimStage::new(cfg);
-    let pipeline = Pipeline::new(cfg.clone(), sink, opts.start_utc_ns);
-    let mut sim = SimLoop::new(stage, pipeline);
-    let mut acc = RunAcc::new(opts.settle_s, cfg.legs.len());
-    let wake = (cfg.control.period_s() / factor).max(0.005);
-    let mut iv = tokio::time::interval(std::time::Duration::from_secs_f64(wake));
-    iv.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Skip);
-    let t0 = tokio::time::Instant::now();
-    let mut last_progress = 0.0;
-    loop {
-        iv.tick().await;
-        let target = (t0.elapsed().as_secs_f64() * factor).min(opts.duration_s);
-        sim.advance_to(target, &mut |r| acc.add(r));
-        if let Some(p) = opts.progress.as_mut() {
-            if target - last_progress >= factor.min(60.0) || target >= opts.duration_s {
-                p(target, opts.duration_s);
-                last_progress = target;
+) -> anyhow::Result<(RunAcc, RunEnd)> {
+    let acc = Arc::new(Mutex::new(RunAcc::new(opts.settle_s, cfg.legs.len())));
+    let acc2 = Arc::clone(&acc);
+    let mut progress = opts.progress.take();
+    let total = opts.duration_s;
+    let mut last = 0.0;
+    let backend = SimBackend::new(cfg).with_observer(Box::new(move |r: &TickReport| {
+        if let Ok(mut a) = acc2.lock() {
+            a.add(r);
+        }
+        if let Some(p) = progress.as_mut() {
+            if r.t_s - last >= 60.0 || r.t_s >= total {
+                p(r.t_s, total);
+                last = r.t_s;
             }
         }
-        if target >= opts.duration_s {
-            break;
-        }
-    }
-    (acc, sim)
+    }));
+    let ropts = RuntimeOptions {
+        speed: factor,
+        duration_s: Some(opts.duration_s),
+        config_path: None,
+        recording: None,
+        start_utc_ns: opts.start_utc_ns,
+        catch_up: true,
+    };
+    let (_handles, _shutdown, task) = runtime::start(cfg.clone(), Box::new(backend), sink, ropts);
+    let end = task.await??;
+    let acc = acc
+        .lock()
+        .map_err(|_| anyhow::anyhow!("summary accumulator poisoned"))?
+        .clone();
+    Ok((acc, end))
 }
 
 /// The closed-loop run's results before the summary is assembled.
@@ -337,21 +345,32 @@ pub async fn run_demo(
     mut opts: DemoOptions,
 ) -> anyhow::Result<DemoSummary> {
     let started = Instant::now();
-    let (acc, sim) = match opts.speed {
-        Speed::Max => run_virtual(cfg, sink, &mut opts, None),
-        Speed::Factor(f) => run_paced(cfg, sink, &mut opts, f).await,
-    };
-    let wall_s = started.elapsed().as_secs_f64();
-    let t_end = sim.time_s();
-    let mode = sim.into_pipeline();
-    let end_mode = mode.controller().mode();
-    let (report, counters) = mode.finish(t_end, "run complete")?;
-    let closed = Closed {
-        acc,
-        counters,
-        report,
-        mode: end_mode,
-        wall_s,
+    let closed = match opts.speed {
+        Speed::Max => {
+            let (acc, sim) = run_virtual(cfg, sink, &mut opts, None);
+            let t_end = sim.time_s();
+            let pipeline = sim.into_pipeline();
+            let mode = pipeline.controller().mode();
+            let (report, counters) = pipeline.finish(t_end, "run complete")?;
+            Closed {
+                acc,
+                counters,
+                report,
+                mode,
+                wall_s: started.elapsed().as_secs_f64(),
+            }
+        }
+        Speed::Factor(f) => {
+            let (acc, end) = run_paced(cfg, sink, &mut opts, f).await?;
+            let wall_s = started.elapsed().as_secs_f64();
+            Closed {
+                acc,
+                counters: end.counters,
+                report: end.report,
+                mode: cfg.control.mode,
+                wall_s,
+            }
+        }
     };
     let mut ref_opts = DemoOptions {
         progress: None,

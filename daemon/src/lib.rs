@@ -19,5 +19,6 @@ pub mod demo;
 pub mod pipeline;
 pub mod record;
 pub mod rows;
+pub mod runtime;
 pub mod sim;
 pub mod status;

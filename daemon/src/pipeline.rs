@@ -13,6 +13,7 @@
 use stilt_config::{Config, LoopGains, Mode};
 
 use crate::core::cascade::{Controller, Inputs, LimitFlags, Outputs};
+use crate::core::interlocks::{Alarm, AlarmChange, InterlockInputs, Interlocks};
 use crate::rows::{
     ControlRow, EventKind, EventRow, LegRow, Quality, RowSink, SinkError, SinkReport, Stamp,
     TiltSample,
@@ -74,6 +75,13 @@ pub struct Pipeline {
     counters: PipelineCounters,
     last_tilt_urad: Option<[f64; 2]>,
     last_leg_temps: Vec<Option<f64>>,
+    last_row: Option<ControlRow>,
+    interlocks: Interlocks,
+    last_applied_w: Vec<f64>,
+    readback_w: Vec<Option<f64>>,
+    overrun: bool,
+    tick_out_of_range: bool,
+    sensors_ready_once: bool,
 }
 
 impl Pipeline {
@@ -90,6 +98,13 @@ impl Pipeline {
             counters: PipelineCounters::default(),
             last_tilt_urad: None,
             last_leg_temps: Vec::new(),
+            last_row: None,
+            interlocks: Interlocks::new(&cfg),
+            last_applied_w: vec![0.0; cfg.legs.len()],
+            readback_w: vec![None; cfg.legs.len()],
+            overrun: false,
+            tick_out_of_range: false,
+            sensors_ready_once: false,
             cfg,
         };
         let detail = format!(
@@ -112,6 +127,53 @@ impl Pipeline {
     /// The controller (read-only).
     pub fn controller(&self) -> &Controller {
         &self.controller
+    }
+
+    /// Heater power read back from the supply since the last tick, W per leg (for the
+    /// over-power and open-circuit interlocks). Call before [`Pipeline::on_tick`].
+    pub fn set_readback(&mut self, readback_w: &[Option<f64>]) {
+        self.readback_w = (0..self.cfg.legs.len())
+            .map(|i| readback_w.get(i).copied().flatten())
+            .collect();
+    }
+
+    /// Marks the coming tick as late for its period (the loop-overrun interlock).
+    pub fn note_overrun(&mut self) {
+        self.overrun = true;
+    }
+
+    /// Active and latched alarms.
+    pub fn alarms(&self) -> &[Alarm] {
+        self.interlocks.alarms()
+    }
+
+    /// Acknowledges one alarm or all; writes who did it to the events.
+    pub fn acknowledge(
+        &mut self,
+        t_s: f64,
+        id: Option<&str>,
+        who: &str,
+    ) -> Result<Vec<String>, String> {
+        let done = self.interlocks.acknowledge(id, who)?;
+        for a in &done {
+            self.event(
+                t_s,
+                EventKind::Acknowledge,
+                who,
+                format!("acknowledged {a}"),
+            );
+        }
+        Ok(done)
+    }
+
+    /// The row written at the last tick.
+    pub fn last_row(&self) -> Option<&ControlRow> {
+        self.last_row.as_ref()
+    }
+
+    /// The controller, for changes between ticks that are not [`Command`]s.
+    pub fn controller_mut(&mut self) -> &mut Controller {
+        &mut self.controller
     }
 
     /// Counters so far.
@@ -149,6 +211,9 @@ impl Pipeline {
         let range = self.cfg.limits.tilt_range_urad;
         if q == Quality::Ok && (cal[0].abs() > range || cal[1].abs() > range) {
             q = Quality::OutOfRange;
+        }
+        if q == Quality::OutOfRange {
+            self.tick_out_of_range = true;
         }
         self.sink.tilt(&TiltSample {
             stamp: self.stamp(t_s),
@@ -254,11 +319,12 @@ impl Pipeline {
             self.counters.ticks_missing_leg_temp += 1;
         }
         self.last_leg_temps.clone_from(&temps);
-        let out = self.controller.step(&Inputs {
+        let mut out = self.controller.step(&Inputs {
             now_s: t_s,
             tilt_urad: tilt,
             leg_temp_c: temps.clone(),
         });
+        self.guard(t_s, &mut out, &temps, tilt);
 
         for (p, l) in out.power_w.iter().zip(&self.cfg.legs) {
             if !(0.0..=l.heater_max_power_w).contains(p) {
@@ -300,7 +366,90 @@ impl Pipeline {
         };
         self.sink.control(&row);
         self.counters.ticks += 1;
+        self.last_row = Some(row);
         out
+    }
+
+    /// Startup inhibit and interlocks: may change `out` before anything is applied.
+    fn guard(
+        &mut self,
+        t_s: f64,
+        out: &mut Outputs,
+        temps: &[Option<f64>],
+        tilt: Option<[f64; 2]>,
+    ) {
+        let mode = out.mode;
+        let commanded = out.power_w.clone();
+        let mut power = commanded.clone();
+        // Safe by default: heaters stay at zero until every sensor the mode needs has
+        // given a usable reading once.
+        if !self.sensors_ready_once {
+            let ready = match mode {
+                Mode::Off | Mode::Manual => true,
+                Mode::Temperature => temps.iter().all(Option::is_some),
+                Mode::Level => temps.iter().all(Option::is_some) && tilt.is_some(),
+            };
+            if ready {
+                self.sensors_ready_once = true;
+                self.event(
+                    t_s,
+                    EventKind::Mode,
+                    "controller",
+                    format!("sensors ready: {mode} control starts"),
+                );
+            } else {
+                power = vec![0.0; power.len()];
+            }
+        }
+        let readback = std::mem::replace(&mut self.readback_w, vec![None; commanded.len()]);
+        let verdict = self.interlocks.evaluate(&InterlockInputs {
+            t_s,
+            mode,
+            leg_temp_c: temps,
+            tilt_urad: tilt,
+            tilt_out_of_range: std::mem::take(&mut self.tick_out_of_range),
+            commanded_w: &power,
+            readback_w: &readback,
+            last_applied_w: &self.last_applied_w,
+            overrun: std::mem::take(&mut self.overrun),
+        });
+        for ch in &verdict.changes {
+            match ch {
+                AlarmChange::Raised(a) => {
+                    let detail = format!("{}: {} (action: {})", a.id, a.message, a.action.as_str());
+                    self.event(t_s, EventKind::Alarm, "interlocks", detail);
+                }
+                AlarmChange::Cleared(id) => {
+                    self.event(
+                        t_s,
+                        EventKind::Alarm,
+                        "interlocks",
+                        format!("{id}: condition cleared (latched until acknowledged)"),
+                    );
+                }
+            }
+        }
+        if verdict.safe && mode != Mode::Off {
+            self.controller.set_mode(Mode::Off);
+            self.event(
+                t_s,
+                EventKind::Mode,
+                "interlocks",
+                format!("mode: {mode} → off (safe state)"),
+            );
+            out.mode = Mode::Off;
+        }
+        if verdict.power_w != commanded {
+            self.controller.override_power(&verdict.power_w);
+            out.drive_v = verdict
+                .power_w
+                .iter()
+                .zip(&self.cfg.legs)
+                .map(|(p, l)| (p * l.heater_resistance_ohm).sqrt())
+                .collect();
+            out.power_w.clone_from(&verdict.power_w);
+        }
+        self.last_applied_w.clone_from(&out.power_w);
     }
 
     fn note_limits(&mut self, t_s: f64, now: LimitFlags) {

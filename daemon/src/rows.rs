@@ -316,3 +316,39 @@ impl RowSink for MemorySink {
         })
     }
 }
+
+/// A [`MemorySink`] behind a shared lock, so a test can read the rows while or after a
+/// run that owns the sink. Clone it before handing it over.
+#[derive(Debug, Default, Clone)]
+pub struct SharedSink(pub std::sync::Arc<std::sync::Mutex<MemorySink>>);
+
+impl SharedSink {
+    /// A copy of the events so far.
+    pub fn events(&self) -> Vec<EventRow> {
+        self.0.lock().map(|m| m.events.clone()).unwrap_or_default()
+    }
+}
+
+impl RowSink for SharedSink {
+    fn tilt(&mut self, s: &TiltSample) {
+        if let Ok(mut m) = self.0.lock() {
+            m.tilt(s);
+        }
+    }
+    fn control(&mut self, r: &ControlRow) {
+        if let Ok(mut m) = self.0.lock() {
+            m.control(r);
+        }
+    }
+    fn event(&mut self, e: &EventRow) {
+        if let Ok(mut m) = self.0.lock() {
+            m.event(e);
+        }
+    }
+    fn finish(&mut self) -> Result<SinkReport, SinkError> {
+        match self.0.lock() {
+            Ok(mut m) => m.finish(),
+            Err(_) => Err(SinkError("memory sink poisoned".into())),
+        }
+    }
+}

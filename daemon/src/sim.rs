@@ -35,6 +35,7 @@ pub struct SimLoop {
     samples_per_tick: u64,
     sample: u64,
     meas_acc: ([f64; 2], u32),
+    tilt_fault: Option<Quality>,
 }
 
 impl SimLoop {
@@ -51,6 +52,7 @@ impl SimLoop {
             pipeline,
             sample: 0,
             meas_acc: ([0.0; 2], 0),
+            tilt_fault: None,
         }
     }
 
@@ -69,16 +71,22 @@ impl SimLoop {
         &mut self.stage
     }
 
+    /// Fault injection: every tilt reading arrives with this quality (e.g. `BadFrame`
+    /// for garbled frames, `Timeout` for no reply) until set back to `None`.
+    pub fn set_tilt_fault(&mut self, q: Option<Quality>) {
+        self.tilt_fault = q;
+    }
+
     /// Advances one tiltmeter period; returns the tick's report when a tick ran.
     pub fn step(&mut self) -> Option<TickReport> {
         self.stage.advance(self.sample_period_s);
         self.sample += 1;
         let t = self.time_s();
         let r = self.stage.read_tilt();
-        let q = if r.in_range {
-            Quality::Ok
-        } else {
-            Quality::OutOfRange
+        let q = match self.tilt_fault {
+            Some(f) => f,
+            None if r.in_range => Quality::Ok,
+            None => Quality::OutOfRange,
         };
         self.pipeline.on_tilt(t, r.raw, q);
         if q == Quality::Ok {
@@ -103,6 +111,14 @@ impl SimLoop {
                 None => (f64::NAN, Quality::Missing),
             })
             .collect();
+        let delivered: Vec<Option<f64>> = self
+            .stage
+            .truth()
+            .heater_power_w
+            .into_iter()
+            .map(Some)
+            .collect();
+        self.pipeline.set_readback(&delivered);
         let outputs = self.pipeline.on_tick(t, &temps);
         for (i, p) in outputs.power_w.iter().enumerate() {
             self.stage.set_heater_power(i, *p);

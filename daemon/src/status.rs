@@ -221,3 +221,17 @@ pub struct Handles {
     /// Requests for changes.
     pub requests: tokio::sync::mpsc::Sender<Request>,
 }
+
+impl RecordingStatus {
+    /// The recorder's health as status reports it.
+    pub fn from_health(h: &crate::record::HealthSnapshot) -> Self {
+        RecordingStatus {
+            enabled: true,
+            segment: h.segment.clone(),
+            rows_written: h.tilt_rows + h.control_rows + h.event_rows,
+            dropped_rows: h.dropped_rows,
+            last_flush_utc_ns: h.last_flush_utc_ns,
+            alarm: h.alarm.clone(),
+        }
+    }
+}

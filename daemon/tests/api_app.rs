@@ -99,7 +99,7 @@ async fn every_change_needs_an_operator_token() {
         let got = fake.received.lock().unwrap().clone();
         assert_eq!(got.len(), 1, "{}", r.path);
         assert_eq!(
-            got[0].1, "api:alice",
+            got[0].1, "alice",
             "who reaches the loop for the audit trail"
         );
     }

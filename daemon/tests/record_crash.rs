@@ -68,7 +68,8 @@ fn killed_writer_keeps_every_flushed_row_and_next_start_is_fresh() {
 
     let killed = dir.join("crash-0000.h5");
     let before = std::fs::read(&killed).unwrap();
-    let set = SegmentSet::open(&[killed.clone()]).expect("SWMR read of the killed segment");
+    let set =
+        SegmentSet::open(std::slice::from_ref(&killed)).expect("SWMR read of the killed segment");
     let info = &set.segments()[0];
     assert!(
         !info.closed,

@@ -100,7 +100,7 @@ fn live_segment_is_readable_while_it_grows() {
     let mut counts = Vec::new();
     for _ in 0..4 {
         let before = *flushed.lock().unwrap();
-        let set = SegmentSet::open(&[path.clone()]).expect("open live segment");
+        let set = SegmentSet::open(std::slice::from_ref(&path)).expect("open live segment");
         assert!(!set.segments()[0].closed);
         let rows: Vec<_> = set
             .tilt(TimeWindow::ALL)
@@ -191,7 +191,7 @@ fn live_segment_is_readable_while_it_grows() {
         assert!(std::time::Instant::now() < deadline, "no DONE line");
         std::thread::sleep(Duration::from_millis(20));
     };
-    let set = SegmentSet::open(&[path.clone()]).unwrap();
+    let set = SegmentSet::open(std::slice::from_ref(&path)).unwrap();
     assert!(set.segments()[0].closed);
     assert_eq!(set.tilt(TimeWindow::ALL).count() as u64, fin.0);
     let dump = Command::new("h5dump")

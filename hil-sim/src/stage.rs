@@ -39,6 +39,12 @@ struct SimLeg {
     expansion_m_per_k: f64,
     thermal: LegThermal,
     power_w: f64,
+    /// Delivered power ÷ commanded power: 0 for an open heater, 1 when healthy.
+    delivery_ratio: f64,
+    /// Added to this leg's thermometer readings, K (a drifting or miswired sensor).
+    thermometer_offset_k: f64,
+    /// The thermometer gives no reading.
+    thermometer_dead: bool,
 }
 
 /// The whole simulated stage.
@@ -58,6 +64,8 @@ pub struct SimStage {
     tilt_quantum_urad: f64,
     tilt_range_urad: f64,
     tilt_rate_hz: f64,
+    air_offset_k: f64,
+    bump_urad: [f64; 2],
     thermo_noise: Noise,
     thermo_sigma_k: f64,
     channels: Vec<(usize, usize)>,
@@ -89,6 +97,9 @@ impl SimStage {
                     expansion_m_per_k: l.expansion_m_per_k(),
                     thermal: LegThermal::new(p, 0.1, room.at_c(l.x_m, l.y_m)),
                     power_w: 0.0,
+                    delivery_ratio: 1.0,
+                    thermometer_offset_k: 0.0,
+                    thermometer_dead: false,
                 }
             })
             .collect();
@@ -115,6 +126,8 @@ impl SimStage {
             tilt_quantum_urad: sim.tilt_quantum_nrad * 1e-3,
             tilt_range_urad: cfg.tiltmeter.range_urad,
             tilt_rate_hz: fs,
+            air_offset_k: 0.0,
+            bump_urad: [0.0, 0.0],
             thermo_noise: Noise::new(sim.seed, streams::THERMOMETERS),
             thermo_sigma_k: sim.thermometer_noise_mk * 1e-3,
             channels: cfg
@@ -156,8 +169,8 @@ impl SimStage {
         // Air and its gradient are sampled at the start of the step and held (ZOH);
         // they change over hours, so the error at 0.1 s steps is negligible.
         for l in &mut self.legs {
-            let air = self.room.at_c(l.x_m, l.y_m);
-            l.thermal.step(dt_s, l.power_w, air);
+            let air = self.room.at_c(l.x_m, l.y_m) + self.air_offset_k;
+            l.thermal.step(dt_s, l.power_w * l.delivery_ratio, air);
         }
         self.t_s += dt_s;
         self.room.advance_to(self.t_s);
@@ -177,7 +190,7 @@ impl SimStage {
             .collect();
         [0, 1].map(|k| {
             let legs_rad: f64 = self.plane[k].iter().zip(&heights).map(|(w, h)| w * h).sum();
-            floor[k] + legs_rad * 1e6 + self.assembly_offset_urad[k]
+            floor[k] + legs_rad * 1e6 + self.assembly_offset_urad[k] + self.bump_urad[k]
         })
     }
 
@@ -213,8 +226,11 @@ impl SimStage {
     /// One reading of thermometer `channel`, °C, or `None` for a channel no leg has.
     pub fn read_thermometer(&mut self, channel: usize) -> Option<f64> {
         let &(_, leg) = self.channels.iter().find(|(c, _)| *c == channel)?;
-        let t = self.legs[leg].thermal.body_c();
-        Some(t + self.thermo_sigma_k * self.thermo_noise.gauss())
+        let l = &self.legs[leg];
+        let t = l.thermal.body_c() + l.thermometer_offset_k;
+        // The noise is drawn even for a dead sensor, so a fault never shifts the others' noise.
+        let noise = self.thermo_sigma_k * self.thermo_noise.gauss();
+        (!l.thermometer_dead).then_some(t + noise)
     }
 
     /// Everything the simulator knows, for checking results.
@@ -225,8 +241,42 @@ impl SimStage {
             floor_tilt_urad: self.floor.tilt_urad(self.t_s),
             leg_temp_c: self.legs.iter().map(|l| l.thermal.body_c()).collect(),
             air_c: self.room.centre_c(),
-            heater_power_w: self.legs.iter().map(|l| l.power_w).collect(),
+            heater_power_w: self
+                .legs
+                .iter()
+                .map(|l| l.power_w * l.delivery_ratio)
+                .collect(),
         }
+    }
+
+    /// Fault: leg `leg`'s heater delivers `ratio` × the commanded power (0 = open circuit,
+    /// 1 = healthy, above 1 = a supply delivering more than asked).
+    pub fn set_heater_delivery(&mut self, leg: usize, ratio: f64) {
+        if let Some(l) = self.legs.get_mut(leg) {
+            l.delivery_ratio = if ratio.is_finite() {
+                ratio.max(0.0)
+            } else {
+                0.0
+            };
+        }
+    }
+
+    /// Fault: the thermometer of leg `leg` reads `offset_k` too high, or (`dead`) nothing.
+    pub fn set_thermometer_fault(&mut self, leg: usize, offset_k: f64, dead: bool) {
+        if let Some(l) = self.legs.get_mut(leg) {
+            l.thermometer_offset_k = if offset_k.is_finite() { offset_k } else { 0.0 };
+            l.thermometer_dead = dead;
+        }
+    }
+
+    /// Disturbance: a step of the room air by `k` kelvin (everywhere), from now on.
+    pub fn set_air_offset_k(&mut self, k: f64) {
+        self.air_offset_k = if k.is_finite() { k } else { 0.0 };
+    }
+
+    /// Disturbance: the plate knocked by `urad` (added to its tilt), from now on.
+    pub fn set_bump_urad(&mut self, urad: [f64; 2]) {
+        self.bump_urad = urad.map(|u| if u.is_finite() { u } else { 0.0 });
     }
 }
 

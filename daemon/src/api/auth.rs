@@ -343,7 +343,8 @@ pub struct Caller {
 }
 
 impl Caller {
-    /// The `who` given to the control loop and written to the recording's events.
+    /// The source written to the audit trail: `api:<name>`. (The control loop receives
+    /// the bare name as the request's `who` and adds the `api:` itself.)
     pub fn who(&self) -> String {
         format!("api:{}", self.name)
     }

@@ -145,7 +145,7 @@ async fn submit(
     let (tx, rx) = oneshot::channel();
     let req = Request {
         change,
-        who: who.clone(),
+        who: caller.name.clone(),
         reply: tx,
     };
     let budget = Duration::from_millis(st.inner.config.network.change_timeout_ms);

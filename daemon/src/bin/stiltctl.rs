@@ -61,6 +61,7 @@ enum Cmd {
         mode: String,
     },
     /// Change the gains of the tilt loops or the leg loops (only the ones given).
+    #[command(allow_negative_numbers = true)]
     Gains {
         /// `tilt` or `leg`.
         #[arg(value_parser = ["tilt", "leg"])]

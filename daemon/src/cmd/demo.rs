@@ -8,7 +8,8 @@ use stilt_config::Config;
 
 use super::config_errors;
 use crate::demo::{self, DemoOptions, Speed};
-use crate::rows::CountingSink;
+use crate::record::{Recorder, RecorderOptions};
+use crate::rows::{CountingSink, RowSink};
 
 /// Arguments of `stiltd demo`.
 #[derive(clap::Args, Debug)]
@@ -31,6 +32,12 @@ pub struct DemoArgs {
     /// Override the scenario's random seed.
     #[arg(long)]
     pub seed: Option<u64>,
+    /// Folder for the recording (HDF5 segments); default: `runs` under the current folder.
+    #[arg(long, default_value = "runs")]
+    pub out: PathBuf,
+    /// Do not record; only print the summary.
+    #[arg(long)]
+    pub no_record: bool,
 }
 
 /// Runs `stiltd demo`.
@@ -46,7 +53,8 @@ pub fn run(a: &DemoArgs) -> ExitCode {
             Err(e) => return config_errors(&e),
         },
     };
-    run_demo(cfg, a.duration, a.speed, a.settle, a.json, a.seed)
+    let out = (!a.no_record).then(|| a.out.clone());
+    run_demo(cfg, a.duration, a.speed, a.settle, a.json, a.seed, out)
 }
 
 fn run_demo(
@@ -56,6 +64,7 @@ fn run_demo(
     settle_s: f64,
     json: bool,
     seed: Option<u64>,
+    out: Option<PathBuf>,
 ) -> ExitCode {
     if let Some(s) = seed {
         cfg.simulation.seed = s;
@@ -64,9 +73,9 @@ fn run_demo(
         .duration_since(std::time::UNIX_EPOCH)
         .map_or(0, |d| d.as_nanos() as i64);
     let bar = progress_bar(duration_s);
-    let progress: Option<Box<dyn FnMut(f64, f64)>> = bar.clone().map(|b| {
+    let progress: Option<Box<dyn FnMut(f64, f64) + Send>> = bar.clone().map(|b| {
         Box::new(move |done: f64, _total: f64| b.set_position(done as u64))
-            as Box<dyn FnMut(f64, f64)>
+            as Box<dyn FnMut(f64, f64) + Send>
     });
     let opts = DemoOptions {
         duration_s,
@@ -75,7 +84,35 @@ fn run_demo(
         progress,
         start_utc_ns,
     };
-    let sink = Box::new(CountingSink::default());
+    let sink: Box<dyn RowSink> = match out {
+        None => Box::new(CountingSink::default()),
+        Some(dir) => {
+            let mut ro = RecorderOptions::from_config(&cfg);
+            ro.dir = dir;
+            ro.start_utc_ns = Some(start_utc_ns);
+            // In virtual time nothing may be dropped: the sink waits for the disk instead.
+            ro.blocking = matches!(speed, Speed::Max);
+            if ro.blocking {
+                ro.batch_rows = 4096;
+            }
+            match Recorder::start(&cfg, ro) {
+                Ok((sink, handle)) => {
+                    if !json {
+                        eprintln!(
+                            "stiltd: recording run {} into {}",
+                            handle.run_id(),
+                            handle.dir().display()
+                        );
+                    }
+                    Box::new(sink)
+                }
+                Err(e) => {
+                    eprintln!("stiltd: cannot start the recording: {e}");
+                    return ExitCode::FAILURE;
+                }
+            }
+        }
+    };
     let rt = match tokio::runtime::Builder::new_current_thread()
         .enable_time()
         .build()

@@ -10,6 +10,7 @@ use stilt_config::ConfigErrors;
 
 pub mod check;
 pub mod demo;
+pub mod export;
 
 /// Every `stiltd` subcommand.
 #[derive(clap::Subcommand, Debug)]
@@ -18,6 +19,8 @@ pub enum Command {
     Check(check::CheckArgs),
     /// Run the full pipeline on the built-in simulated stage (no hardware needed).
     Demo(demo::DemoArgs),
+    /// Write recorded segments out as CSV.
+    Export(export::ExportArgs),
 }
 
 impl Command {
@@ -26,6 +29,7 @@ impl Command {
         match self {
             Command::Check(a) => check::run(a),
             Command::Demo(a) => demo::run(a),
+            Command::Export(a) => export::run(a),
         }
     }
 }

@@ -105,6 +105,8 @@ pub struct Controller {
     power_w: Vec<f64>,
     last_now_s: Option<f64>,
     any_leg_saturated: bool,
+    last_leg_sp: Vec<f64>,
+    last_leg_y: Vec<f64>,
 }
 
 impl Controller {
@@ -164,6 +166,8 @@ impl Controller {
             power_w: vec![0.0; cfg.legs.len()],
             last_now_s: None,
             any_leg_saturated: false,
+            last_leg_sp: vec![f64::NAN; cfg.legs.len()],
+            last_leg_y: vec![f64::NAN; cfg.legs.len()],
             control: c,
         }
     }
@@ -230,6 +234,19 @@ impl Controller {
     /// The heater powers commanded at the last tick, W.
     pub fn power_w(&self) -> &[f64] {
         &self.power_w
+    }
+
+    /// Tells the controller that something else (an interlock, the startup inhibit)
+    /// overrode the powers it commanded at the last tick: the leg loops track what was
+    /// applied, so that control resumes without a bump, and the tilt loops stop
+    /// integrating at the next tick.
+    pub fn override_power(&mut self, applied_w: &[f64]) {
+        for (i, pid) in self.leg_pid.iter_mut().enumerate() {
+            let p = applied_w.get(i).copied().unwrap_or(0.0);
+            pid.track(self.last_leg_sp[i], self.last_leg_y[i], p);
+        }
+        self.power_w = applied_w.to_vec();
+        self.any_leg_saturated = true;
     }
 
     /// One control tick.
@@ -334,6 +351,8 @@ impl Controller {
         }
         self.any_leg_saturated = saturated;
         self.power_w.clone_from(&power);
+        self.last_leg_sp.clone_from(&leg_sp);
+        self.last_leg_y = (0..n).map(temp).collect();
         let drive_v = power
             .iter()
             .zip(&self.legs)

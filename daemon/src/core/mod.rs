@@ -14,5 +14,6 @@
 
 pub mod cascade;
 pub mod geometry;
+pub mod interlocks;
 pub mod pid;
 pub mod ramp;

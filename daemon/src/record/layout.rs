@@ -756,6 +756,46 @@ mod tests {
         assert!(err.contains("quality code 9"), "{err}");
     }
 
+    #[test]
+    fn the_contract_document_lists_every_field_with_its_unit() {
+        let doc = include_str!("../../../docs/recording.md");
+        for (name, fields) in [
+            (DS_TILT, TILT_FIELDS),
+            (DS_CONTROL, CONTROL_FIELDS),
+            (DS_CONTROL_LEGS, LEG_FIELDS),
+            (DS_EVENTS, EVENT_FIELDS),
+            (DS_STATE, STATE_FIELDS),
+        ] {
+            // The section of that dataset: from its heading to the next one.
+            let head = format!("### `{name}`");
+            let start = doc
+                .find(&head)
+                .unwrap_or_else(|| panic!("no section {head}"));
+            let section = &doc[start..];
+            let section = &section[..section[3..].find("\n### ").map_or(section.len(), |i| i + 3)];
+            for (f, u, _) in fields {
+                let ok = section
+                    .lines()
+                    .any(|l| l.contains(&format!("`{f}`")) && l.contains(&format!("| {u} |")));
+                assert!(
+                    ok,
+                    "docs/recording.md, {head}: no row for `{f}` with unit {u}"
+                );
+            }
+        }
+        for q in 0..=5u8 {
+            let name = Quality::from_code(q).unwrap().as_str();
+            assert!(QUALITY_CODES.contains(&format!("{q} {name}")));
+            assert!(
+                doc.contains(&format!("{q} {name}")),
+                "quality code {q} {name} not in the doc"
+            );
+        }
+        for k in EventKind::ALL {
+            assert!(doc.contains(&format!("{} {}", event_kind_code(k), k.as_str())));
+        }
+    }
+
     fn sample() -> TiltSample {
         TiltSample {
             stamp: Stamp {

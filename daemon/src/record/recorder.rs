@@ -679,8 +679,13 @@ impl RowSink for RecorderSink {
     fn control(&mut self, r: &ControlRow) {
         self.last_stamp = r.stamp;
         self.cur.control.push(r.clone());
-        // One batch per control tick keeps the queue's latency at one tick.
-        self.submit();
+        if self.blocking {
+            // Virtual time: latency does not matter, batch size does.
+            self.after_push();
+        } else {
+            // One batch per control tick keeps the queue's latency at one tick.
+            self.submit();
+        }
     }
 
     fn event(&mut self, e: &EventRow) {
@@ -720,7 +725,7 @@ struct Writer {
     files: Vec<PathBuf>,
     /// Segments whose close failed, kept open (see `SegmentWriter::close`); closed once
     /// a flush succeeds again.
-    graveyard: Vec<Box<SegmentWriter>>,
+    graveyard: Vec<SegmentWriter>,
 }
 
 impl Writer {
@@ -1020,7 +1025,7 @@ impl Writer {
         let text = e.to_string().replace('\n', " ");
         if let Some(seg) = self.seg.take() {
             // Kept open, not closed: see `SegmentWriter::close`. `retry` closes it later.
-            self.graveyard.push(Box::new(seg));
+            self.graveyard.push(seg);
         }
         let alarm = format!(
             "recording stopped: {text}; retrying every {:.1} s with a new segment; holding at most {} rows, dropping the rest",
@@ -1048,7 +1053,7 @@ impl Writer {
                 Ok(_) => {}
                 Err(c) => {
                     if let Some(s) = c.segment {
-                        self.graveyard.push(s);
+                        self.graveyard.push(*s);
                     }
                 }
             }
@@ -1104,7 +1109,7 @@ impl Writer {
                     Ok(_) => self.health.mark_flushed(),
                     Err(c) => {
                         error = Some(c.error.to_string());
-                        self.graveyard.extend(c.segment);
+                        self.graveyard.extend(c.segment.map(|b| *b));
                     }
                 }
             }

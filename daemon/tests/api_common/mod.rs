@@ -280,7 +280,8 @@ fn apply(
         ControlRequest::Acknowledge(id) => {
             for a in &mut s.alarms {
                 if id.as_deref().is_none_or(|i| i == a.id) {
-                    a.acknowledged_by = Some(who.to_string());
+                    // As the runtime does: the source is `api:` and the name.
+                    a.acknowledged_by = Some(format!("api:{who}"));
                 }
             }
             format!("acknowledged {}", id.as_deref().unwrap_or("all"))
