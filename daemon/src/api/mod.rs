@@ -6,7 +6,8 @@
 //! (loopback by default), optionally with TLS (rustls, ring provider) from the
 //! configured certificate and key, and [`serve`] runs it until shutdown. [`routes`] is
 //! the one list of every endpoint, its method and the access it needs; the router and
-//! the OpenAPI test (docs/openapi.yaml) are both built from it.
+//! the OpenAPI test (docs/openapi.json) are both built from it. [`spawn_thread`] runs the
+//! server on a thread and tokio runtime of its own, apart from the control loop's.
 //!
 //! The server never delays the control loop: it only reads the latest `Status` from the
 //! watch channel (an `Arc` clone under a brief lock), subscribes to the rows broadcast
@@ -335,7 +336,7 @@ async fn not_found() -> ApiError {
     ApiError::new(
         StatusCode::NOT_FOUND,
         "not_found",
-        "no such endpoint; see docs/openapi.yaml (every path starts with /v1, or is /metrics)",
+        "no such endpoint; see docs/openapi.json (every path starts with /v1, or is /metrics)",
     )
 }
 
@@ -343,7 +344,7 @@ async fn wrong_method() -> ApiError {
     ApiError::new(
         StatusCode::METHOD_NOT_ALLOWED,
         "method_not_allowed",
-        "this endpoint does not take that method; see docs/openapi.yaml",
+        "this endpoint does not take that method; see docs/openapi.json",
     )
 }
 
@@ -478,6 +479,100 @@ impl Server {
         stopper.abort();
         self.state.inner.shutdown.cancel();
         r.map_err(ServeError::Io)
+    }
+}
+
+/// The API server on a thread and tokio runtime of its own (see [`spawn_thread`]).
+pub struct ServerThread {
+    addr: SocketAddr,
+    stop: Option<tokio::sync::oneshot::Sender<()>>,
+    thread: Option<std::thread::JoinHandle<Result<(), ServeError>>>,
+}
+
+impl ServerThread {
+    /// The address bound.
+    pub fn local_addr(&self) -> SocketAddr {
+        self.addr
+    }
+
+    /// Shuts the server down (streams end at once, requests get [`DRAIN`]) and waits.
+    pub fn stop(mut self) -> Result<(), ServeError> {
+        self.finish()
+    }
+
+    fn finish(&mut self) -> Result<(), ServeError> {
+        if let Some(s) = self.stop.take() {
+            let _ = s.send(());
+        }
+        match self.thread.take() {
+            Some(t) => t.join().unwrap_or_else(|_| {
+                Err(ServeError::Io(std::io::Error::other(
+                    "the API thread panicked",
+                )))
+            }),
+            None => Ok(()),
+        }
+    }
+}
+
+impl Drop for ServerThread {
+    fn drop(&mut self) {
+        let _ = self.finish();
+    }
+}
+
+/// Starts the API server on its own thread with its own tokio runtime (`workers`
+/// threads), so that HTTP work never shares a scheduler with the control loop: a burst
+/// of clients can cost CPU, but never a place in the loop's task queue. Returns once
+/// the address is bound (or binding failed).
+pub fn spawn_thread(
+    config: &Config,
+    handles: Handles,
+    workers: usize,
+) -> Result<ServerThread, ServeError> {
+    let config = config.clone();
+    let (addr_tx, addr_rx) = std::sync::mpsc::channel();
+    let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
+    let thread = std::thread::Builder::new()
+        .name("stiltd-api".into())
+        .spawn(move || -> Result<(), ServeError> {
+            let rt = tokio::runtime::Builder::new_multi_thread()
+                .worker_threads(workers.max(1))
+                .thread_name("stiltd-api")
+                .enable_all()
+                .build()?;
+            rt.block_on(async move {
+                let server = match Server::bind(&config, handles).await {
+                    Ok(s) => {
+                        let _ = addr_tx.send(Ok(s.local_addr()));
+                        s
+                    }
+                    Err(e) => {
+                        let _ = addr_tx.send(Err(e));
+                        return Ok(());
+                    }
+                };
+                server
+                    .run(async move {
+                        let _ = stop_rx.await;
+                    })
+                    .await
+            })
+        })?;
+    match addr_rx.recv() {
+        Ok(Ok(addr)) => Ok(ServerThread {
+            addr,
+            stop: Some(stop_tx),
+            thread: Some(thread),
+        }),
+        Ok(Err(e)) => {
+            let _ = thread.join();
+            Err(e)
+        }
+        Err(_) => Err(match thread.join() {
+            Ok(Err(e)) => e,
+            _ => ServeError::Io(std::io::Error::other("the API thread ended before binding")),
+        }),
     }
 }
 
