@@ -113,3 +113,37 @@ async fn a_token_file_others_can_read_stops_the_server() {
     assert!(Server::bind(&cfg, fake.handles.clone()).await.is_ok());
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+#[test]
+fn the_server_thread_serves_and_stops() {
+    // A runtime only for the fake loop; the server brings its own.
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(1)
+        .enable_all()
+        .build()
+        .unwrap();
+    let mut cfg = config();
+    cfg.network.bind = "127.0.0.1:0".parse().unwrap();
+    let fake = rt.block_on(async { fake_loop(&cfg, Behaviour::Answer, 16) });
+    let server = stilt_daemon::api::spawn_thread(&cfg, fake.handles.clone(), 1).expect("thread");
+    let base = format!("http://{}", server.local_addr());
+    let c = Client::new(&base, None, None, Duration::from_secs(5)).unwrap();
+    let reply = c
+        .put("/v1/mode", &serde_json::json!({"mode": "off"}))
+        .expect("a change through the server thread");
+    assert_eq!(reply.by, "api:local");
+    assert_eq!(fake.now().mode, stilt_config::Mode::Off);
+    server.stop().expect("stopped");
+    assert!(
+        c.get::<HealthWire>("/v1/health/live").is_err(),
+        "still answering"
+    );
+    // Binding an address in use fails with the address named.
+    let taken = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
+    cfg.network.bind = taken.local_addr().unwrap();
+    let e = match stilt_daemon::api::spawn_thread(&cfg, fake.handles.clone(), 1) {
+        Ok(_) => panic!("bound a taken address"),
+        Err(e) => e.to_string(),
+    };
+    assert!(e.contains(&cfg.network.bind.to_string()), "{e}");
+}
