@@ -300,6 +300,7 @@ async fn the_api_in_front_of_the_simulated_stage() {
         let (code, out, err) = stiltctl(&b, Some(OBSERVER), &["status"]);
         assert_eq!(code, 0, "{err}");
         assert!(out.contains("mode level"), "{out}");
+        println!("stiltctl status:\n{out}");
         assert!(out.contains("tilt") && out.contains("legs"), "{out}");
         let (code, out, _) = stiltctl(&b, Some(OBSERVER), &["status", "--json"]);
         assert_eq!(code, 0);
