@@ -17,6 +17,7 @@
 //! ```
 
 pub mod errors;
+mod instruments;
 pub mod materials;
 pub mod raw;
 mod spans;
@@ -24,6 +25,7 @@ pub mod types;
 mod validate;
 
 pub use errors::{ConfigError, ConfigErrors};
+pub use instruments::port_map_port;
 pub use materials::{MATERIALS, Material};
 pub use types::*;
 
@@ -33,17 +35,47 @@ pub const DEMO_SCENARIO: &str = include_str!("../examples/demo.toml");
 /// The commented template for a real stage.
 pub const HARDWARE_TEMPLATE: &str = include_str!("../examples/hardware-template.toml");
 
-/// Parses and validates a configuration held in memory.
-///
-/// `origin` names the text in error messages (usually the file's path).
-pub fn load_str(text: &str, origin: &str) -> Result<Config, ConfigErrors> {
-    let spans = spans::SpanIndex::build(text, origin)?;
-    let (raw, unknown_keys) = raw::parse(text, &spans)?;
-    validate::validate(raw, text, &spans, unknown_keys)
+/// The demo stage wired to the hardware-in-the-loop simulator (`stiltd hil`); its
+/// `[instruments] port_map` names the file the simulator writes.
+pub const HIL_EXAMPLE: &str = include_str!("../examples/hil/stage.toml");
+
+/// Where relative paths in a configuration are resolved, and overrides.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct LoadOptions {
+    /// Folder that `instruments.port_map` is relative to (the configuration file's folder);
+    /// `None` means the current directory.
+    pub base_dir: Option<std::path::PathBuf>,
+    /// A port map to use instead of `instruments.port_map` (e.g. the one a freshly started
+    /// simulator just wrote).
+    pub port_map: Option<std::path::PathBuf>,
 }
 
-/// Reads, parses and validates a configuration file.
+/// Parses and validates a configuration held in memory.
+///
+/// `origin` names the text in error messages (usually the file's path). A relative
+/// `instruments.port_map` is resolved against the current directory; see [`load_str_with`].
+pub fn load_str(text: &str, origin: &str) -> Result<Config, ConfigErrors> {
+    load_str_with(text, origin, &LoadOptions::default())
+}
+
+/// [`load_str`] with explicit [`LoadOptions`].
+pub fn load_str_with(text: &str, origin: &str, opts: &LoadOptions) -> Result<Config, ConfigErrors> {
+    let spans = spans::SpanIndex::build(text, origin)?;
+    let (raw, unknown_keys) = raw::parse(text, &spans)?;
+    validate::validate(raw, text, &spans, unknown_keys, opts)
+}
+
+/// Reads, parses and validates a configuration file; a relative `instruments.port_map`
+/// is resolved against the file's folder.
 pub fn load_file(path: &std::path::Path) -> Result<Config, ConfigErrors> {
+    load_file_with(path, None)
+}
+
+/// [`load_file`], optionally with a port map that replaces `instruments.port_map`.
+pub fn load_file_with(
+    path: &std::path::Path,
+    port_map: Option<&std::path::Path>,
+) -> Result<Config, ConfigErrors> {
     let origin = path.display().to_string();
     let text = std::fs::read_to_string(path).map_err(|e| {
         ConfigErrors(vec![ConfigError {
@@ -56,5 +88,9 @@ pub fn load_file(path: &std::path::Path) -> Result<Config, ConfigErrors> {
             allowed: "a readable UTF-8 TOML file".into(),
         }])
     })?;
-    load_str(&text, &origin)
+    let opts = LoadOptions {
+        base_dir: path.parent().map(std::path::Path::to_path_buf),
+        port_map: port_map.map(std::path::Path::to_path_buf),
+    };
+    load_str_with(&text, &origin, &opts)
 }

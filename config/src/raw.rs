@@ -24,6 +24,105 @@ pub struct RawConfig {
     pub network: Option<RawNetwork>,
     pub simulation: Option<RawSimulation>,
     pub interlocks: Option<RawInterlocks>,
+    pub instruments: Option<RawInstruments>,
+}
+
+/// `[instruments]`: the serial instruments of a real stage (or of the HIL simulator).
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawInstruments {
+    /// A port map file (path relative to the configuration file) whose `[ports]` and
+    /// `[serial]` fill in the ports, baud rates and thermometer unit not given here.
+    pub port_map: Option<String>,
+    pub tiltmeter: Option<RawTiltmeterLink>,
+    pub thermometer: Option<RawThermometerLink>,
+    pub heater: Option<RawHeaterLink>,
+}
+
+/// `[instruments.tiltmeter]`: the tiltmeter's line and its configurable line protocol.
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawTiltmeterLink {
+    pub port: Option<String>,
+    pub baud: Option<i64>,
+    pub poll_hz: Option<f64>,
+    pub timeout_ms: Option<i64>,
+    pub retries: Option<i64>,
+    pub query: Option<String>,
+    pub reply_terminator: Option<String>,
+    pub reply_prefix: Option<String>,
+    pub max_reply_len: Option<i64>,
+    pub x: Option<RawLineField>,
+    pub y: Option<RawLineField>,
+    pub status: Option<RawLineField>,
+    pub bad_status_mask: Option<i64>,
+}
+
+/// One value of a line-protocol reply: by delimiter and index, or by pattern.
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawLineField {
+    pub delimiter: Option<String>,
+    pub index: Option<i64>,
+    pub pattern: Option<String>,
+    pub scale: Option<f64>,
+    pub offset: Option<f64>,
+}
+
+/// `[instruments.thermometer]`: the Modbus RTU RTD thermometer.
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawThermometerLink {
+    pub port: Option<String>,
+    pub baud: Option<i64>,
+    pub unit: Option<i64>,
+    pub sensor: Option<String>,
+    pub poll_hz: Option<f64>,
+    pub timeout_ms: Option<i64>,
+    pub retries: Option<i64>,
+    pub stale_after_s: Option<f64>,
+}
+
+/// `[instruments.heater]`: the SCPI heater supply.
+#[derive(Debug, Default, Deserialize)]
+#[allow(missing_docs)]
+pub struct RawHeaterLink {
+    pub port: Option<String>,
+    pub baud: Option<i64>,
+    pub timeout_ms: Option<i64>,
+    pub retries: Option<i64>,
+    pub readback: Option<bool>,
+    pub readback_tolerance_w: Option<f64>,
+}
+
+/// A port map file, as the HIL simulator writes it.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(missing_docs)]
+pub struct RawPortMap {
+    pub ports: Option<RawPorts>,
+    pub serial: Option<RawPortSerial>,
+}
+
+/// `[ports]` of a port map.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(missing_docs)]
+pub struct RawPorts {
+    pub tiltmeter: Option<String>,
+    pub thermometer: Option<String>,
+    pub heater: Option<String>,
+}
+
+/// `[serial]` of a port map.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(missing_docs)]
+pub struct RawPortSerial {
+    pub tiltmeter_baud: Option<i64>,
+    pub thermometer_baud: Option<i64>,
+    pub heater_baud: Option<i64>,
+    pub thermometer_unit: Option<i64>,
 }
 
 /// `[stage]`
@@ -282,6 +381,44 @@ fn allowed_keys(path: &str) -> String {
             "network",
             "simulation",
             "interlocks",
+            "instruments",
+        ],
+        "instruments" => &["port_map", "tiltmeter", "thermometer", "heater"],
+        "instruments.tiltmeter" => &[
+            "port",
+            "baud",
+            "poll_hz",
+            "timeout_ms",
+            "retries",
+            "query",
+            "reply_terminator",
+            "reply_prefix",
+            "max_reply_len",
+            "x",
+            "y",
+            "status",
+            "bad_status_mask",
+        ],
+        "instruments.tiltmeter.x" | "instruments.tiltmeter.y" | "instruments.tiltmeter.status" => {
+            &["delimiter", "index", "pattern", "scale", "offset"]
+        }
+        "instruments.thermometer" => &[
+            "port",
+            "baud",
+            "unit",
+            "sensor",
+            "poll_hz",
+            "timeout_ms",
+            "retries",
+            "stale_after_s",
+        ],
+        "instruments.heater" => &[
+            "port",
+            "baud",
+            "timeout_ms",
+            "retries",
+            "readback",
+            "readback_tolerance_w",
         ],
         "stage" => &["name"],
         "legs" => &[

@@ -30,6 +30,9 @@ pub struct Config {
     pub simulation: Simulation,
     /// Safety interlocks, evaluated on every tick.
     pub interlocks: Interlocks,
+    /// The serial instruments (`[instruments]`), if the file describes them; required by
+    /// `stiltd run`, unused by `stiltd demo`.
+    pub instruments: Option<Instruments>,
     /// The exact text this configuration was read from (recorded with each run).
     pub source_text: String,
 }
@@ -343,4 +346,108 @@ pub struct Interlocks {
     pub heater_open_min_power_w: f64,
     /// The control loop late for its period.
     pub loop_overrun: InterlockRule,
+}
+
+/// The serial instruments of a stage: one line each (see `[instruments]` in the template).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Instruments {
+    /// The port map file that filled in ports, if one was named.
+    pub port_map: Option<PathBuf>,
+    /// The two-axis tiltmeter.
+    pub tiltmeter: TiltmeterLink,
+    /// The leg thermometer (Modbus RTU, RTD channels = `legs[].thermometer_channel`).
+    pub thermometer: ThermometerLink,
+    /// The heater supply (SCPI; channel n drives leg n−1 in file order).
+    pub heater: HeaterLink,
+}
+
+/// Settings every serial line shares.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct SerialLink {
+    /// Device path, e.g. `/dev/serial/by-id/…` or `/dev/pts/3`.
+    pub port: String,
+    /// Baud rate (8 data bits, no parity, 1 stop bit).
+    pub baud: u32,
+    /// Longest wait for a complete reply, milliseconds.
+    pub timeout_ms: u64,
+    /// Times a failed request is sent again (0 = once only).
+    pub retries: u8,
+}
+
+/// The tiltmeter's line and its configurable line protocol.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TiltmeterLink {
+    /// The serial line.
+    pub link: SerialLink,
+    /// Queries per second.
+    pub poll_hz: f64,
+    /// The line protocol: fields `x` and `y` (raw units for [`Tiltmeter::calibrate`]) and,
+    /// if configured, `status`.
+    pub spec: stilt_protocol::line::LineSpec,
+    /// Status bits that mark a reading out of range (0 = status ignored).
+    pub bad_status_mask: u32,
+}
+
+/// A platinum RTD type (IEC 60751 coefficients, R0 at 0 °C).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum RtdSensor {
+    /// R0 = 100 Ω.
+    Pt100,
+    /// R0 = 500 Ω.
+    Pt500,
+    /// R0 = 1000 Ω.
+    Pt1000,
+}
+
+impl RtdSensor {
+    /// Every sensor, with its configuration spelling.
+    pub const ALL: [(RtdSensor, &'static str); 3] = [
+        (RtdSensor::Pt100, "pt100"),
+        (RtdSensor::Pt500, "pt500"),
+        (RtdSensor::Pt1000, "pt1000"),
+    ];
+
+    /// Resistance at 0 °C, ohm.
+    pub fn r0_ohm(self) -> f64 {
+        match self {
+            RtdSensor::Pt100 => 100.0,
+            RtdSensor::Pt500 => 500.0,
+            RtdSensor::Pt1000 => 1000.0,
+        }
+    }
+
+    /// The configuration spelling.
+    pub fn as_str(self) -> &'static str {
+        Self::ALL
+            .iter()
+            .find(|(s, _)| *s == self)
+            .map(|(_, n)| *n)
+            .unwrap_or("pt100")
+    }
+}
+
+/// The leg thermometer's line.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ThermometerLink {
+    /// The serial line.
+    pub link: SerialLink,
+    /// Modbus server address, 1–247.
+    pub unit: u8,
+    /// The sensors on every channel.
+    pub sensor: RtdSensor,
+    /// Scans read per second.
+    pub poll_hz: f64,
+    /// A temperature older than this is stale, seconds.
+    pub stale_after_s: f64,
+}
+
+/// The heater supply's line.
+#[derive(Debug, Clone, PartialEq)]
+pub struct HeaterLink {
+    /// The serial line.
+    pub link: SerialLink,
+    /// Whether each output's current is measured back after it is set.
+    pub readback: bool,
+    /// Largest allowed |commanded − read-back power| per leg, watts.
+    pub readback_tolerance_w: f64,
 }

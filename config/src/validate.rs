@@ -13,21 +13,21 @@ use crate::raw::*;
 use crate::spans::SpanIndex;
 use crate::types::*;
 
-struct V<'a> {
-    spans: &'a SpanIndex,
-    errors: Vec<ConfigError>,
+pub(crate) struct V<'a> {
+    pub(crate) spans: &'a SpanIndex,
+    pub(crate) errors: Vec<ConfigError>,
 }
 
 /// An allowed numeric range, inclusive or exclusive at each end.
 #[derive(Clone, Copy)]
-struct Range {
+pub(crate) struct Range {
     min: f64,
     min_incl: bool,
     max: f64,
     max_incl: bool,
 }
 
-const fn between(min: f64, max: f64) -> Range {
+pub(crate) const fn between(min: f64, max: f64) -> Range {
     Range {
         min,
         min_incl: true,
@@ -35,7 +35,7 @@ const fn between(min: f64, max: f64) -> Range {
         max_incl: true,
     }
 }
-const fn above(min: f64, max: f64) -> Range {
+pub(crate) const fn above(min: f64, max: f64) -> Range {
     Range {
         min,
         min_incl: false,
@@ -75,19 +75,29 @@ fn g(v: f64) -> String {
 }
 
 impl<'a> V<'a> {
-    fn err(&mut self, path: &str, problem: impl Into<String>, allowed: impl Into<String>) {
+    pub(crate) fn err(
+        &mut self,
+        path: &str,
+        problem: impl Into<String>,
+        allowed: impl Into<String>,
+    ) {
         let e = self.spans.error(path, problem.into(), allowed.into());
         self.errors.push(e);
     }
 
     /// An error about a whole table or array, where echoing the value would not help.
-    fn err_table(&mut self, path: &str, problem: impl Into<String>, allowed: impl Into<String>) {
+    pub(crate) fn err_table(
+        &mut self,
+        path: &str,
+        problem: impl Into<String>,
+        allowed: impl Into<String>,
+    ) {
         let mut e = self.spans.error(path, problem.into(), allowed.into());
         e.found.clear();
         self.errors.push(e);
     }
 
-    fn missing(&mut self, path: &str, allowed: &str) {
+    pub(crate) fn missing(&mut self, path: &str, allowed: &str) {
         let mut e = self
             .spans
             .error(path, "required key is missing".into(), allowed.into());
@@ -96,7 +106,13 @@ impl<'a> V<'a> {
     }
 
     /// A number: required when `default` is `None`.
-    fn num(&mut self, path: &str, v: Option<f64>, default: Option<f64>, r: Range) -> Option<f64> {
+    pub(crate) fn num(
+        &mut self,
+        path: &str,
+        v: Option<f64>,
+        default: Option<f64>,
+        r: Range,
+    ) -> Option<f64> {
         match v {
             None => {
                 if default.is_none() {
@@ -116,7 +132,7 @@ impl<'a> V<'a> {
         }
     }
 
-    fn int(
+    pub(crate) fn int(
         &mut self,
         path: &str,
         v: Option<i64>,
@@ -147,6 +163,7 @@ pub(crate) fn validate(
     text: &str,
     spans: &SpanIndex,
     earlier: Vec<ConfigError>,
+    opts: &crate::LoadOptions,
 ) -> Result<Config, ConfigErrors> {
     let mut v = V {
         spans,
@@ -165,6 +182,13 @@ pub(crate) fn validate(
     let network = network(&mut v, raw.network.unwrap_or_default());
     let simulation = simulation(&mut v, raw.simulation.unwrap_or_default());
     let interlocks = interlocks(&mut v, raw.interlocks.unwrap_or_default());
+    let instruments = match raw.instruments {
+        None => Some(None),
+        Some(i) => {
+            crate::instruments::instruments(&mut v, i, tiltmeter.as_ref(), legs.as_deref(), opts)
+                .map(Some)
+        }
+    };
 
     // Rules across sections, checked only when their parts were valid.
     if let (Some(tm), Some(c)) = (&tiltmeter, &control) {
@@ -245,8 +269,17 @@ pub(crate) fn validate(
         Some(network),
         Some(simulation),
         Some(interlocks),
+        Some(instruments),
     ) = (
-        legs, tiltmeter, control, limits, recording, network, simulation, interlocks,
+        legs,
+        tiltmeter,
+        control,
+        limits,
+        recording,
+        network,
+        simulation,
+        interlocks,
+        instruments,
     )
     else {
         // Every `None` above pushed an error, so this branch is unreachable in practice;
@@ -267,6 +300,7 @@ pub(crate) fn validate(
         network,
         simulation,
         interlocks,
+        instruments,
         source_text: text.to_string(),
     })
 }

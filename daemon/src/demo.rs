@@ -319,8 +319,24 @@ async fn run_paced(
         start_utc_ns: opts.start_utc_ns,
         catch_up: true,
     };
-    let (_handles, _shutdown, task) = runtime::start(cfg.clone(), Box::new(backend), sink, ropts);
+    let (_handles, shutdown, task) = runtime::start(cfg.clone(), Box::new(backend), sink, ropts);
+    // SIGTERM and SIGINT end the run the safe way: heaters to zero, recording closed.
+    let signals = tokio::spawn(async move {
+        use tokio::signal::unix::{SignalKind, signal};
+        let (Ok(mut term), Ok(mut int)) = (
+            signal(SignalKind::terminate()),
+            signal(SignalKind::interrupt()),
+        ) else {
+            return;
+        };
+        tokio::select! {
+            _ = term.recv() => {}
+            _ = int.recv() => {}
+        }
+        shutdown.trigger();
+    });
     let end = task.await??;
+    signals.abort();
     let acc = acc
         .lock()
         .map_err(|_| anyhow::anyhow!("summary accumulator poisoned"))?

@@ -285,6 +285,7 @@ impl Pipeline {
                 )
             }
         };
+        tracing::info!(source, kind = kind.as_str(), t_s, "{detail}");
         self.event(t_s, kind, source, detail);
     }
 
@@ -416,6 +417,11 @@ impl Pipeline {
         for ch in &verdict.changes {
             match ch {
                 AlarmChange::Raised(a) => {
+                    if a.action == stilt_config::InterlockAction::Safe {
+                        tracing::error!(alarm_id = %a.id, action = a.action.as_str(), t_s, "{}: heaters to zero, mode off; acknowledge and restart control when safe", a.message);
+                    } else {
+                        tracing::warn!(alarm_id = %a.id, action = a.action.as_str(), t_s, "{}", a.message);
+                    }
                     let detail = format!("{}: {} (action: {})", a.id, a.message, a.action.as_str());
                     self.event(t_s, EventKind::Alarm, "interlocks", detail);
                 }

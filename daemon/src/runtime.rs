@@ -26,6 +26,11 @@
 //! On shutdown (the [`Shutdown`] switch, SIGTERM/SIGINT in the binary, or the end of a
 //! set duration) the loop commands zero on every heater (`Backend::safe_off`), then
 //! writes the end event and closes the sink.
+//!
+//! Under systemd (`NOTIFY_SOCKET` set; a no-op otherwise) the loop itself says
+//! `READY=1` after its first tick, a one-line `STATUS=` every minute, `WATCHDOG=1` every
+//! half watchdog period *from the tick* — so a loop that stops ticking stops feeding the
+//! watchdog and gets the service restarted — and `STOPPING=1` on shutdown.
 
 use std::collections::VecDeque;
 use std::path::PathBuf;
@@ -164,6 +169,7 @@ pub fn start(
         requests: req_tx,
     };
     let lp = Loop {
+        notifier: Notifier::new(),
         cfg,
         pipeline,
         backend,
@@ -179,7 +185,70 @@ pub fn start(
     (handles, Shutdown(stop_tx), task)
 }
 
+/// systemd notifications, sent from the control loop itself.
+struct Notifier {
+    watchdog_every: Option<Duration>,
+    last_ping: Option<std::time::Instant>,
+    last_status: Option<std::time::Instant>,
+    ready: bool,
+}
+
+impl Notifier {
+    fn new() -> Self {
+        Notifier {
+            watchdog_every: sd_notify::watchdog_enabled().map(|w| w / 2),
+            last_ping: None,
+            last_status: None,
+            ready: false,
+        }
+    }
+
+    /// Called after every tick.
+    fn tick(&mut self, status: &Status) {
+        use sd_notify::NotifyState;
+        let now = std::time::Instant::now();
+        let line = || {
+            let tilt = |k: usize| {
+                status.axes[k].measured_urad.map_or("—".to_string(), |v| {
+                    format!("{:+.1} nrad", (v - status.axes[k].setpoint_urad) * 1e3)
+                })
+            };
+            let active = status.alarms.iter().filter(|a| a.active).count();
+            format!(
+                "mode {}, tilt error x {} y {}, {} alarm(s) active, tick {}",
+                status.mode,
+                tilt(0),
+                tilt(1),
+                active,
+                status.timing.ticks
+            )
+        };
+        if !self.ready {
+            self.ready = true;
+            let _ = sd_notify::notify(&[NotifyState::Ready, NotifyState::Status(&line())]);
+            self.last_status = Some(now);
+        } else if self
+            .last_status
+            .is_none_or(|t| now - t >= Duration::from_secs(60))
+        {
+            let _ = sd_notify::notify(&[NotifyState::Status(&line())]);
+            self.last_status = Some(now);
+        }
+        if let Some(every) = self.watchdog_every {
+            if self.last_ping.is_none_or(|t| now - t >= every) {
+                let _ = sd_notify::notify(&[NotifyState::Watchdog]);
+                self.last_ping = Some(now);
+            }
+        }
+    }
+
+    fn stopping(&self) {
+        let _ = sd_notify::notify(&[sd_notify::NotifyState::Stopping]);
+    }
+}
+
 struct Loop {
+    notifier: Notifier,
     cfg: Config,
     pipeline: Pipeline,
     backend: Box<dyn Backend>,
@@ -212,6 +281,7 @@ impl Loop {
             MissedTickBehavior::Skip
         });
         self.timing.period_s = self.cfg.control.period_s();
+        tracing::info!(stage = %self.cfg.stage_name, mode = %self.cfg.control.mode, rate_hz = self.cfg.control.rate_hz, speed, "control loop started");
         let mut last_tick: Option<Instant> = None;
         let reason = loop {
             tokio::select! {
@@ -223,7 +293,11 @@ impl Loop {
                 }
                 Some(req) = req_rx.recv() => {
                     let now_s = t0.elapsed().as_secs_f64() * speed;
+                    let asked = format!("{:?}", req.change);
                     let answer = self.handle(now_s, req.change, &req.who);
+                    if let Err(r) = &answer {
+                        tracing::info!(who = %req.who, field = %r.field, "request refused: {asked}: {}", r.message);
+                    }
                     let _ = req.reply.send(answer);
                 }
                 at = iv.tick() => {
@@ -241,6 +315,8 @@ impl Loop {
                 }
             }
         };
+        tracing::info!(reason = %reason, ticks = self.pipeline.counters().ticks, "control loop stopping: heaters to zero");
+        self.notifier.stopping();
         self.backend.safe_off();
         let run_time_s = t0.elapsed().as_secs_f64() * speed;
         self.pipeline.event(
@@ -295,6 +371,7 @@ impl Loop {
         self.timing.ticks = self.pipeline.counters().ticks;
         self.last_readings = r;
         let status = self.status(now_s, t0, &out);
+        self.notifier.tick(&status);
         let _ = self.status_tx.send(Arc::new(status));
         if let Some(row) = self.pipeline.last_row() {
             let _ = self.rows_tx.send(Arc::new(row.clone()));

@@ -18,7 +18,7 @@ pub fn workspace() -> PathBuf {
 
 static BUILD: Once = Once::new();
 
-/// Path of a workspace binary (`stiltd`, …), built if needed.
+/// Path of a workspace binary (`stiltd`, `stilt-hil-sim`, …), built if needed.
 pub fn bin(name: &str) -> PathBuf {
     let exe = std::env::current_exe().expect("test executable path");
     // target/<profile>/deps/<test> → target/<profile>/<name>
@@ -32,8 +32,14 @@ pub fn bin(name: &str) -> PathBuf {
         BUILD.call_once(|| {
             let release = dir.ends_with("release");
             let mut c = Command::new(env!("CARGO"));
-            c.current_dir(workspace())
-                .args(["build", "-p", "stilt-daemon", "--bins"]);
+            c.current_dir(workspace()).args([
+                "build",
+                "-p",
+                "stilt-daemon",
+                "-p",
+                "stilt-hil-sim",
+                "--bins",
+            ]);
             if release {
                 c.arg("--release");
             }

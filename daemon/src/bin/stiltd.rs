@@ -17,5 +17,7 @@ struct Cli {
 }
 
 fn main() -> ExitCode {
-    Cli::parse().cmd.run()
+    let cli = Cli::parse();
+    stilt_daemon::logging::init();
+    cli.cmd.run()
 }

@@ -114,7 +114,7 @@ fn run_demo(
         }
     };
     let rt = match tokio::runtime::Builder::new_current_thread()
-        .enable_time()
+        .enable_all()
         .build()
     {
         Ok(rt) => rt,

@@ -11,6 +11,10 @@ use stilt_config::ConfigErrors;
 pub mod check;
 pub mod demo;
 pub mod export;
+pub mod hil;
+pub mod report;
+pub mod run;
+pub mod tune;
 
 /// Every `stiltd` subcommand.
 #[derive(clap::Subcommand, Debug)]
@@ -21,6 +25,14 @@ pub enum Command {
     Demo(demo::DemoArgs),
     /// Write recorded segments out as CSV.
     Export(export::ExportArgs),
+    /// Summarise recorded runs: tilt statistics, spectra, Allan deviation, coupling, plots.
+    Report(report::ReportArgs),
+    /// Step-test one loop on the simulated stage, fit a model and propose gains.
+    Tune(tune::TuneArgs),
+    /// Run the daemon on the serial instruments of a stage file (`[instruments]`).
+    Run(run::RunArgs),
+    /// Run the daemon against the hardware-in-the-loop simulator over real ptys.
+    Hil(hil::HilArgs),
 }
 
 impl Command {
@@ -30,6 +42,10 @@ impl Command {
             Command::Check(a) => check::run(a),
             Command::Demo(a) => demo::run(a),
             Command::Export(a) => export::run(a),
+            Command::Report(a) => report::run(a),
+            Command::Tune(a) => tune::run(a),
+            Command::Run(a) => run::run(a),
+            Command::Hil(a) => hil::run(a),
         }
     }
 }

@@ -208,6 +208,17 @@ impl Controller {
         self.control.manual_power_w = p;
     }
 
+    /// Steps each leg's temperature setpoint to `setpoints_c` at once, without the ramp
+    /// (step tests in `temperature` mode); non-finite entries and extra entries are ignored.
+    pub fn step_leg_setpoints_c(&mut self, setpoints_c: &[f64]) {
+        for (r, &sp) in self.leg_bias.iter_mut().zip(setpoints_c) {
+            if sp.is_finite() {
+                r.value = sp;
+                r.target = sp;
+            }
+        }
+    }
+
     /// The control settings in force (including changes made since start).
     pub fn control(&self) -> &Control {
         &self.control

@@ -1,0 +1,156 @@
+//! The heater supply's task: write every new drive command (SCPI, our own invented command
+//! set; channel n drives leg n−1), then read each output's current back and compare the
+//! power `I²·R` with the commanded `V²/R`.
+//!
+//! On every (re)connection the task clears the supply's status (`*CLS`), switches each
+//! output on and writes the latest command again. Commands never queue up: a `watch`
+//! channel holds only the newest, so a slow or absent supply costs the loop nothing and
+//! the supply always gets the freshest setting. A readback beyond `readback_tolerance_w`
+//! raises a fault event (and counts in the `heater_readback` channel); its return within
+//! tolerance clears it.
+
+use stilt_config::HeaterLink;
+use stilt_protocol::scpi::heater::{HeaterReply, HeaterRequest, MAX_VOLTS};
+use stilt_protocol::session::Session;
+use tokio::sync::watch;
+use tokio::time::Instant;
+
+use super::link::{Line, Outcome, session_config};
+use super::{HEATER, HEATER_READBACK, HeaterCommand, Shared, Stamped, now_utc_ns, secs_since};
+use crate::rows::Quality;
+
+/// Quiet time between SCPI messages (common practice for ASCII instruments on a serial line).
+const TURNAROUND: std::time::Duration = std::time::Duration::from_millis(1);
+
+/// Whether a readback disagrees with the command.
+pub fn mismatch(commanded_v: f64, measured_a: f64, r_ohm: f64, tolerance_w: f64) -> bool {
+    let expected = commanded_v * commanded_v / r_ohm;
+    let got = measured_a * measured_a * r_ohm;
+    !(got.is_finite() && (expected - got).abs() <= tolerance_w)
+}
+
+/// Runs until the command channel closes (the backend is gone); the last command written
+/// is then the safe one the daemon sent on its way out.
+pub async fn run(
+    mut line: Line,
+    link: HeaterLink,
+    resistances: Vec<f64>,
+    mut cmd: watch::Receiver<HeaterCommand>,
+    shared: Shared,
+    origin: Instant,
+) {
+    let mut session = Session::<HeaterRequest>::new(session_config(
+        link.link.timeout_ms,
+        link.link.retries,
+        256,
+        TURNAROUND,
+    ));
+    let n = resistances.len();
+    let mut need_init = true;
+    loop {
+        if line.ensure_open().await {
+            need_init = true;
+        }
+        if need_init {
+            let mut ok = !matches!(
+                line.request(&mut session, HeaterRequest::ClearStatus).await,
+                Outcome::Disconnected
+            );
+            for ch in 0..n {
+                let on = HeaterRequest::SetOutput {
+                    channel: ch as u8 + 1,
+                    on: true,
+                };
+                ok &= !matches!(line.request(&mut session, on).await, Outcome::Disconnected);
+            }
+            if !ok {
+                continue;
+            }
+            need_init = false;
+            cmd.mark_changed();
+        }
+        if cmd.changed().await.is_err() {
+            return;
+        }
+        let c = cmd.borrow_and_update().clone();
+        let mut lost = false;
+        for (ch, v) in c.volts.iter().enumerate().take(n) {
+            let volts = if v.is_finite() {
+                v.clamp(0.0, MAX_VOLTS)
+            } else {
+                0.0
+            };
+            let set = HeaterRequest::SetVoltage {
+                channel: ch as u8 + 1,
+                volts,
+            };
+            if matches!(line.request(&mut session, set).await, Outcome::Disconnected) {
+                lost = true;
+                break;
+            }
+        }
+        if lost {
+            // Reconnect, re-initialise and write the newest command again.
+            need_init = true;
+            continue;
+        }
+        shared.with(|s| s.applied_generation = s.applied_generation.max(c.generation));
+        if !link.readback {
+            continue;
+        }
+        for (ch, (v, r)) in c.volts.iter().zip(&resistances).enumerate() {
+            // A newer command waits: it goes out before more readbacks.
+            if cmd.has_changed().unwrap_or(false) {
+                break;
+            }
+            let q = HeaterRequest::MeasureCurrent {
+                channel: ch as u8 + 1,
+            };
+            let amps = match line.request(&mut session, q).await {
+                Outcome::Reply(HeaterReply::Amps(a)) => a,
+                Outcome::Disconnected => {
+                    need_init = true;
+                    break;
+                }
+                _ => continue,
+            };
+            let bad = mismatch(*v, amps, *r, link.readback_tolerance_w);
+            let p = amps * amps * r;
+            let (t_acq_s, t_utc_ns) = (secs_since(origin), now_utc_ns());
+            let changed = shared.with(|s| {
+                s.readback_w[ch] = Some(Stamped {
+                    value: p,
+                    quality: if bad {
+                        Quality::OutOfRange
+                    } else {
+                        Quality::Ok
+                    },
+                    t_acq_s,
+                    t_utc_ns,
+                });
+                let rb = &mut s.channels[HEATER_READBACK];
+                rb.requests += 1;
+                if bad {
+                    rb.bad_frames += 1;
+                }
+                let was = std::mem::replace(&mut s.mismatch[ch], bad);
+                was != bad
+            });
+            if changed {
+                let detail = format!(
+                    "output {}: commanded {:.3} W ({:.3} V), read back {:.3} W ({:.4} A), tolerance {} W",
+                    ch + 1,
+                    v * v / r,
+                    v,
+                    p,
+                    amps,
+                    link.readback_tolerance_w
+                );
+                if bad {
+                    tracing::warn!(channel = ch + 1, %detail, "heater readback mismatch");
+                }
+                shared.fault(HEATER, format!("readback mismatch, {detail}"), bad);
+            }
+        }
+    }
+}
