@@ -231,6 +231,11 @@ pub struct RawRecording {
 #[allow(missing_docs)]
 pub struct RawNetwork {
     pub bind: Option<String>,
+    pub tls_cert_file: Option<String>,
+    pub tls_key_file: Option<String>,
+    pub token_file: Option<String>,
+    pub max_stream_clients: Option<i64>,
+    pub change_timeout_ms: Option<i64>,
 }
 
 /// `[simulation]`: the simulated stage's physics and disturbances (demo and tests only).
@@ -480,7 +485,14 @@ fn allowed_keys(path: &str) -> String {
             "segment_max_mib",
             "queue_capacity_rows",
         ],
-        "network" => &["bind"],
+        "network" => &[
+            "bind",
+            "tls_cert_file",
+            "tls_key_file",
+            "token_file",
+            "max_stream_clients",
+            "change_timeout_ms",
+        ],
         "interlocks" => &[
             "leg_over_temperature",
             "heater_over_power",

@@ -222,8 +222,26 @@ pub struct Recording {
 /// The HTTP API.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Network {
-    /// Address and port to listen on.
+    /// Address and port to listen on (loopback by default).
     pub bind: SocketAddr,
+    /// Serve HTTPS with this certificate and key instead of plain HTTP.
+    pub tls: Option<Tls>,
+    /// The access-token file (names, roles and SHA-256 hashes of the tokens). Without one,
+    /// reads are open and changes are accepted only when `bind` is a loopback address.
+    pub token_file: Option<PathBuf>,
+    /// Most live streams served at once; further clients are told to retry later.
+    pub max_stream_clients: usize,
+    /// How long a change may wait for the control loop to take and answer it, ms.
+    pub change_timeout_ms: u64,
+}
+
+/// Certificate and private key for HTTPS, both PEM files.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Tls {
+    /// Certificate chain, PEM, leaf first.
+    pub cert_file: PathBuf,
+    /// Private key, PEM (PKCS#8, PKCS#1 or SEC1).
+    pub key_file: PathBuf,
 }
 
 /// Physics and disturbances of the simulated stage (invented demo values by default).

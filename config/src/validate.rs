@@ -800,8 +800,8 @@ fn recording(v: &mut V<'_>, r: RawRecording) -> Option<Recording> {
 
 fn network(v: &mut V<'_>, n: RawNetwork) -> Option<Network> {
     let s = n.bind.unwrap_or_else(|| "127.0.0.1:8040".into());
-    match s.parse::<SocketAddr>() {
-        Ok(bind) => Some(Network { bind }),
+    let bind = match s.parse::<SocketAddr>() {
+        Ok(bind) => Some(bind),
         Err(_) => {
             v.err(
                 "network.bind",
@@ -810,7 +810,69 @@ fn network(v: &mut V<'_>, n: RawNetwork) -> Option<Network> {
             );
             None
         }
-    }
+    };
+    let mut path = |key: &str, p: Option<String>| -> Option<Option<PathBuf>> {
+        match p {
+            None => Some(None),
+            Some(p) if p.trim().is_empty() => {
+                v.err(
+                    key,
+                    "the path is empty",
+                    "a file path (absolute is clearest)",
+                );
+                None
+            }
+            Some(p) => Some(Some(PathBuf::from(p))),
+        }
+    };
+    let cert = path("network.tls_cert_file", n.tls_cert_file);
+    let key = path("network.tls_key_file", n.tls_key_file);
+    let token_file = path("network.token_file", n.token_file);
+    let tls = match (cert, key) {
+        (Some(Some(cert_file)), Some(Some(key_file))) => Some(Some(Tls {
+            cert_file,
+            key_file,
+        })),
+        (Some(None), Some(None)) => Some(None),
+        (Some(Some(_)), Some(None)) => {
+            v.err(
+                "network.tls_cert_file",
+                "a certificate without network.tls_key_file",
+                "both tls_cert_file and tls_key_file, or neither",
+            );
+            None
+        }
+        (Some(None), Some(Some(_))) => {
+            v.err(
+                "network.tls_key_file",
+                "a key without network.tls_cert_file",
+                "both tls_cert_file and tls_key_file, or neither",
+            );
+            None
+        }
+        _ => None,
+    };
+    let streams = v.int(
+        "network.max_stream_clients",
+        n.max_stream_clients,
+        Some(16),
+        1,
+        1024,
+    );
+    let timeout = v.int(
+        "network.change_timeout_ms",
+        n.change_timeout_ms,
+        Some(2000),
+        10,
+        60_000,
+    );
+    Some(Network {
+        bind: bind?,
+        tls: tls?,
+        token_file: token_file?,
+        max_stream_clients: streams? as usize,
+        change_timeout_ms: timeout? as u64,
+    })
 }
 
 fn simulation(v: &mut V<'_>, s: RawSimulation) -> Option<Simulation> {

@@ -9,12 +9,13 @@
 //! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits;
 //! - [`report`]: `stiltd report` (run statistics, JSON, plots); [`tune`]: step and relay tests.
 //! - [`acquire`]: serial acquisition tasks and the `SerialBackend` for real instruments;
-//! - [`record`]: the HDF5 recorder; [`analysis`]: spectra, Allan deviation, fits.
+//! - [`api`]: the HTTP API (JSON under `/v1`, live stream, metrics, access tokens).
 //!
 //! The binaries (`src/bin/`) are thin: they parse the command line and call into here.
 
 pub mod acquire;
 pub mod analysis;
+pub mod api;
 pub mod cmd;
 pub mod core;
 pub mod demo;
