@@ -30,7 +30,13 @@ fn hil(
         .arg(&f)
         .arg("--work-dir")
         .arg(dir.join("work"))
-        .args(["--status-every", "0.5", "--summary-json"])
+        .args([
+            "--status-every",
+            "0.5",
+            "--summary-json",
+            "--listen",
+            "127.0.0.1:0",
+        ])
         .args(extra)
         .stdout(Stdio::piped())
         .stderr(Stdio::piped());

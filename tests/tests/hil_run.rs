@@ -78,6 +78,8 @@ fn sighup_reloads_the_stage_file_and_a_bad_file_is_refused() {
             "9",
             "--out",
             "rec",
+            "--listen",
+            "127.0.0.1:0",
         ])
         .stdout(Stdio::null())
         .stderr(Stdio::piped())

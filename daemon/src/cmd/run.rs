@@ -54,6 +54,12 @@ pub struct RunOptions {
     /// Print a JSON summary (counters, instrument channels) on stdout at the end.
     #[arg(long)]
     pub summary_json: bool,
+    /// Serve the HTTP API here instead of `network.bind` (`127.0.0.1:0` picks a free port).
+    #[arg(long, value_name = "ADDR:PORT")]
+    pub listen: Option<std::net::SocketAddr>,
+    /// Do not serve the HTTP API.
+    #[arg(long)]
+    pub no_api: bool,
 }
 
 /// Runs `stiltd run`.
@@ -141,7 +147,29 @@ async fn serve(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> any
             }
         }));
     }
+    let mut api_cfg = cfg.clone();
+    if let Some(l) = o.listen {
+        api_cfg.network.bind = l;
+    }
     let (handles, shutdown, task) = runtime::start(cfg, Box::new(backend), Box::new(sink), opts);
+    // The HTTP API on a thread and runtime of its own: HTTP work never queues behind or
+    // ahead of the control loop.
+    let api = if o.no_api {
+        None
+    } else {
+        match crate::api::spawn_thread(&api_cfg, handles.clone(), 1) {
+            Ok(a) => {
+                eprintln!("stiltd: API on http://{}", a.local_addr());
+                Some(a)
+            }
+            Err(e) => {
+                shutdown.trigger();
+                let _ = task.await;
+                let _ = acq.zero_heaters(Duration::from_secs(2)).await;
+                anyhow::bail!("cannot serve the API on {}: {e}", api_cfg.network.bind);
+            }
+        }
+    };
     eprintln!("stiltd: running (SIGTERM or Ctrl-C stops it; heaters go to zero)");
 
     let mut term = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
@@ -181,6 +209,11 @@ async fn serve(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> any
             r = &mut task => break r,
         }
     };
+    if let Some(a) = api {
+        if let Err(e) = a.stop() {
+            tracing::warn!("the API server stopped with an error: {e}");
+        }
+    }
     // Whether the loop ended normally (it has commanded zero) or panicked (it could not),
     // the heater task is still alive: command zero through it and confirm the supply took it.
     let zeroed = acq.zero_heaters(Duration::from_secs(2)).await;
