@@ -104,7 +104,13 @@ fn sibling(name: &str) -> Option<PathBuf> {
     Some(exe.parent()?.join(name))
 }
 
-fn start_sim(sim: &Path, map: &Path, faults: Option<&Path>, dir: &Path) -> Result<Child, String> {
+/// The running simulator and the thread that passes its stdout through.
+struct Sim {
+    child: Child,
+    relay: Option<std::thread::JoinHandle<()>>,
+}
+
+fn start_sim(sim: &Path, map: &Path, faults: Option<&Path>, dir: &Path) -> Result<Sim, String> {
     let log = std::fs::File::create(dir.join("stilt-hil-sim.log")).map_err(|e| {
         format!(
             "cannot create the simulator's log in {}: {e}",
@@ -127,7 +133,7 @@ fn start_sim(sim: &Path, map: &Path, faults: Option<&Path>, dir: &Path) -> Resul
         return Err("the simulator's stdout is not available".into());
     };
     let (tx, rx) = std::sync::mpsc::channel();
-    std::thread::spawn(move || {
+    let relay = std::thread::spawn(move || {
         let mut lines = std::io::BufReader::new(out).lines();
         let mut sent = false;
         for l in lines.by_ref() {
@@ -142,7 +148,10 @@ fn start_sim(sim: &Path, map: &Path, faults: Option<&Path>, dir: &Path) -> Resul
         }
     });
     match rx.recv_timeout(READY_TIMEOUT) {
-        Ok(()) => Ok(child),
+        Ok(()) => Ok(Sim {
+            child,
+            relay: Some(relay),
+        }),
         Err(_) => {
             let _ = child.kill();
             let _ = child.wait();
@@ -156,7 +165,17 @@ fn start_sim(sim: &Path, map: &Path, faults: Option<&Path>, dir: &Path) -> Resul
 }
 
 /// SIGTERM (through `kill`, as the workspace has no unsafe code), then SIGKILL after 3 s.
-fn stop_sim(child: &mut Child, dir: &Path) {
+/// The simulator's exit summary is passed through before this returns.
+fn stop_sim(sim: &mut Sim, dir: &Path) {
+    stop_child(&mut sim.child, dir);
+    // The relay ends at the simulator's end of output: wait for it so that its summary
+    // line is printed before stiltd exits.
+    if let Some(r) = sim.relay.take() {
+        let _ = r.join();
+    }
+}
+
+fn stop_child(child: &mut Child, dir: &Path) {
     let _ = Command::new("kill")
         .arg("-TERM")
         .arg(child.id().to_string())

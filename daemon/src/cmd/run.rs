@@ -135,17 +135,7 @@ async fn serve(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> any
     opts.duration_s = o.duration;
     opts.config_path = config_path;
     if let Some(h) = recorder.clone() {
-        opts.recording = Some(Box::new(move || {
-            let s = h.health();
-            RecordingStatus {
-                enabled: true,
-                segment: s.segment,
-                rows_written: s.tilt_rows + s.control_rows + s.event_rows,
-                dropped_rows: s.dropped_rows,
-                last_flush_utc_ns: s.last_flush_utc_ns,
-                alarm: s.alarm,
-            }
-        }));
+        opts.recording = Some(Box::new(move || RecordingStatus::from_health(&h.health())));
     }
     let mut api_cfg = cfg.clone();
     if let Some(l) = o.listen {

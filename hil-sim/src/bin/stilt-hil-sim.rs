@@ -20,7 +20,7 @@ use stilt_hil_sim::portmap::{PortMap, write_atomic};
 use stilt_hil_sim::rig::{
     DEFAULT_THERMOMETER_UNIT, HEATER_BAUD, Summary, THERMOMETER_BAUD, TILTMETER_BAUD,
 };
-use tokio::io::{AsyncReadExt, AsyncWriteExt};
+use tokio::io::AsyncWriteExt;
 use tokio_serial::{SerialPort, SerialStream};
 use tracing::Instrument;
 
@@ -256,6 +256,82 @@ async fn tick(rig: Shared, speed: f64) {
     }
 }
 
+/// What the reader thread of one pty master saw.
+enum FromPort {
+    /// Bytes from the peer.
+    Data(Vec<u8>),
+    /// No one holds the slave side open (the master reads EIO or hangs up).
+    NoPeer,
+}
+
+/// Reads one pty master on a plain thread: `poll(2)` for input, then `read(2)`, on a
+/// duplicate of the master's descriptor. Rationale: once a master has reported a hang-up
+/// (before the daemon first opens the slave), tokio's readiness for it keeps the
+/// "read closed" bit for good, and an async read then spins on EAGAIN at full CPU. A
+/// level-triggered `poll` has no such memory.
+#[allow(unsafe_code)]
+fn spawn_reader(port: &SerialStream) -> Result<tokio::sync::mpsc::Receiver<FromPort>> {
+    use std::os::fd::{AsRawFd, FromRawFd, OwnedFd};
+    let (tx, rx) = tokio::sync::mpsc::channel(64);
+    // SAFETY: `dup` on a descriptor we own returns a new descriptor or -1; a new one is
+    // owned by nobody else, so `OwnedFd` may take it (and closes it when the thread ends).
+    let fd = unsafe { libc::dup(port.as_raw_fd()) };
+    if fd < 0 {
+        bail!(
+            "cannot duplicate the pty master: {}",
+            std::io::Error::last_os_error()
+        );
+    }
+    let fd = unsafe { OwnedFd::from_raw_fd(fd) };
+    std::thread::Builder::new()
+        .name("pty-reader".into())
+        .spawn(move || {
+            let mut buf = [0u8; 512];
+            loop {
+                let mut p = libc::pollfd {
+                    fd: fd.as_raw_fd(),
+                    events: libc::POLLIN,
+                    revents: 0,
+                };
+                // SAFETY: one valid pollfd, its length 1.
+                let r = unsafe { libc::poll(&mut p, 1, 200) };
+                if r == 0 {
+                    if tx.is_closed() {
+                        return;
+                    }
+                    continue;
+                }
+                if r < 0 || p.revents & libc::POLLIN == 0 {
+                    if tx.blocking_send(FromPort::NoPeer).is_err() {
+                        return;
+                    }
+                    std::thread::sleep(NO_PEER_BACKOFF);
+                    continue;
+                }
+                // SAFETY: `buf` is valid for `buf.len()` bytes.
+                let n = unsafe { libc::read(fd.as_raw_fd(), buf.as_mut_ptr().cast(), buf.len()) };
+                let msg = match n {
+                    n if n > 0 => FromPort::Data(buf[..n as usize].to_vec()),
+                    0 => FromPort::NoPeer,
+                    _ if std::io::Error::last_os_error().kind()
+                        == std::io::ErrorKind::WouldBlock =>
+                    {
+                        continue;
+                    }
+                    _ => FromPort::NoPeer,
+                };
+                let no_peer = matches!(msg, FromPort::NoPeer);
+                if tx.blocking_send(msg).is_err() {
+                    return;
+                }
+                if no_peer {
+                    std::thread::sleep(NO_PEER_BACKOFF);
+                }
+            }
+        })?;
+    Ok(rx)
+}
+
 /// Serves one instrument on its pty master until aborted.
 async fn serve(
     device: DeviceKind,
@@ -264,7 +340,13 @@ async fn serve(
     start: Instant,
     state: Option<PathBuf>,
 ) {
-    let mut buf = [0u8; 512];
+    let mut from_port = match spawn_reader(&port) {
+        Ok(rx) => rx,
+        Err(e) => {
+            tracing::error!("cannot read the port: {e:#}");
+            return;
+        }
+    };
     let mut peer = false;
     let mut write_errors = 0u64;
     loop {
@@ -276,23 +358,23 @@ async fn serve(
             }
         };
         tokio::select! {
-            r = port.read(&mut buf) => match r {
-                Ok(n) if n > 0 => {
+            m = from_port.recv() => match m {
+                Some(FromPort::Data(bytes)) => {
                     if !peer {
                         tracing::info!("peer opened the port");
                         peer = true;
                     }
-                    lock(&rig).handle_input(device, start.elapsed(), &buf[..n]);
+                    lock(&rig).handle_input(device, start.elapsed(), &bytes);
                 }
                 // EIO (or EOF) while no slave fd is open: the daemon has not connected yet
-                // or has let go. Wait and try again, so it may connect late or reconnect.
-                _ => {
+                // or has let go; the reader thread waits and tries again.
+                Some(FromPort::NoPeer) => {
                     if peer {
                         tracing::info!("peer closed the port; waiting for it to reopen");
                         peer = false;
                     }
-                    tokio::time::sleep(NO_PEER_BACKOFF).await;
                 }
+                None => return,
             },
             () = wake => lock(&rig).handle_timeout(device, start.elapsed()),
         }
