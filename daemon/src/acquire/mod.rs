@@ -502,6 +502,15 @@ impl AcqHandle {
         false
     }
 
+    /// Sets every heater to 0 V without waiting (no runtime needed: usable from a panic
+    /// hook). The heater task writes it at its next turn.
+    pub fn command_zero_now(&self) {
+        self.cmd.send_modify(|c| {
+            c.volts.iter_mut().for_each(|v| *v = 0.0);
+            c.generation += 1;
+        });
+    }
+
     /// Counters now.
     pub fn channels(&self) -> Vec<ChannelStatus> {
         self.shared.with(|s| s.channels.clone())

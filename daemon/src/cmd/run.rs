@@ -142,6 +142,19 @@ async fn serve(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> any
         api_cfg.network.bind = l;
     }
     let (handles, shutdown, task) = runtime::start(cfg, Box::new(backend), Box::new(sink), opts);
+    // Best effort on a panic anywhere (the API thread, the recorder, the loop): command zero
+    // through the heater task and stop the loop, then let the default hook report it. Both
+    // are plain channel sends, so they work from any thread without a runtime.
+    {
+        let zero = acq.clone();
+        let stop = shutdown.clone();
+        let default = std::panic::take_hook();
+        std::panic::set_hook(Box::new(move |info| {
+            zero.command_zero_now();
+            stop.trigger();
+            default(info);
+        }));
+    }
     // The HTTP API on a thread and runtime of its own: HTTP work never queues behind or
     // ahead of the control loop.
     let api = if o.no_api {
