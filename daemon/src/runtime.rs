@@ -362,17 +362,10 @@ impl Loop {
     }
 
     fn tick(&mut self, now_s: f64, t0: Instant) {
-        let r = self.backend.poll(now_s);
-        for &(t, raw, q) in &r.tilt {
-            self.pipeline.on_tilt(t, raw, q);
-            if q.is_usable() {
-                self.last_tilt_ok_s = Some(t);
-            }
+        let (out, r) = run_tick(&mut self.pipeline, self.backend.as_mut(), now_s);
+        if let Some(&(t, _, _)) = r.tilt.iter().rev().find(|s| s.2.is_usable()) {
+            self.last_tilt_ok_s = Some(t);
         }
-        self.pipeline.set_readback(&r.readback_power_w);
-        let out = self.pipeline.on_tick(now_s, &r.leg_temps);
-        self.backend.apply(now_s, &out.power_w, &out.drive_v);
-        self.backend.after_tick(now_s, &out);
         self.timing.ticks = self.pipeline.counters().ticks;
         self.last_readings = r;
         let status = self.status(now_s, t0, &out);
@@ -632,6 +625,25 @@ impl Loop {
     }
 }
 
+/// One control tick over a backend: every reading since the last tick into the
+/// pipeline, the tick, the commands out. The same in every world: the real-time loop
+/// and the virtual-time [`crate::sim::SimLoop`] both call it.
+pub fn run_tick(
+    pipeline: &mut Pipeline,
+    backend: &mut dyn Backend,
+    now_s: f64,
+) -> (Outputs, Readings) {
+    let r = backend.poll(now_s);
+    for &(t, raw, q) in &r.tilt {
+        pipeline.on_tilt(t, raw, q);
+    }
+    pipeline.set_readback(&r.readback_power_w);
+    let out = pipeline.on_tick(now_s, &r.leg_temps);
+    backend.apply(now_s, &out.power_w, &out.drive_v);
+    backend.after_tick(now_s, &out);
+    (out, r)
+}
+
 fn check_gains(g: &LoopGains) -> Result<(), Refused> {
     let bad = |field: &str, message: &str| {
         Err(Refused {
@@ -752,6 +764,8 @@ pub struct SimBackend {
     meas_acc: ([f64; 2], u32),
     last_measured: Option<[f64; 2]>,
     observer: Option<TickObserver>,
+    pending: Vec<(f64, [f64; 2], Quality)>,
+    tilt_fault: Option<Quality>,
 }
 
 /// A callback that sees every tick of a simulated run with the stage's truth.
@@ -760,8 +774,13 @@ pub type TickObserver = Box<dyn FnMut(&TickReport) + Send>;
 impl SimBackend {
     /// A fresh simulated stage for `cfg` (its `[simulation]` section).
     pub fn new(cfg: &Config) -> Self {
+        Self::with_stage(SimStage::new(cfg), cfg)
+    }
+
+    /// A backend over a stage built (and perhaps altered) by the caller for `cfg`.
+    pub fn with_stage(stage: SimStage, cfg: &Config) -> Self {
         SimBackend {
-            stage: SimStage::new(cfg),
+            stage,
             tiltmeter: cfg.tiltmeter.clone(),
             thermometer_channels: cfg.legs.iter().map(|l| l.thermometer_channel).collect(),
             dt_s: 1.0 / cfg.tiltmeter.rate_hz,
@@ -769,6 +788,59 @@ impl SimBackend {
             meas_acc: ([0.0; 2], 0),
             last_measured: None,
             observer: None,
+            pending: Vec::new(),
+            tilt_fault: None,
+        }
+    }
+
+    /// Run time the stage has reached, s (whole tiltmeter periods).
+    pub fn time_s(&self) -> f64 {
+        self.samples as f64 * self.dt_s
+    }
+
+    /// The stage (for fault injection in tests).
+    pub fn stage_mut(&mut self) -> &mut SimStage {
+        &mut self.stage
+    }
+
+    /// Fault injection: every tilt reading arrives with this quality (e.g. `BadFrame`
+    /// for garbled frames, `Timeout` for no reply) until set back to `None`.
+    pub fn set_tilt_fault(&mut self, q: Option<Quality>) {
+        self.tilt_fault = q;
+    }
+
+    /// Advances the stage to run time `t_s` in tiltmeter periods, keeping each reading
+    /// for the next [`Backend::poll`].
+    pub fn advance_samples_to(&mut self, t_s: f64) {
+        // Compare in whole samples so that float steps never add an extra one.
+        let end = (t_s / self.dt_s + 1e-9).floor() as u64;
+        while self.samples < end {
+            self.stage.advance(self.dt_s);
+            self.samples += 1;
+            let r = self.stage.read_tilt();
+            let q = match self.tilt_fault {
+                Some(f) => f,
+                None if r.in_range => Quality::Ok,
+                None => Quality::OutOfRange,
+            };
+            if q == Quality::Ok {
+                let c = self.tiltmeter.calibrate(r.raw);
+                self.meas_acc.0[0] += c[0];
+                self.meas_acc.0[1] += c[1];
+                self.meas_acc.1 += 1;
+            }
+            self.pending
+                .push((self.samples as f64 * self.dt_s, r.raw, q));
+        }
+    }
+
+    /// The tick's outputs with the stage's truth beside them.
+    pub fn report(&self, now_s: f64, out: &Outputs) -> TickReport {
+        TickReport {
+            t_s: now_s,
+            outputs: out.clone(),
+            true_tilt_urad: self.stage.plate_tilt_urad(),
+            measured_tilt_urad: self.last_measured,
         }
     }
 
@@ -786,25 +858,8 @@ impl SimBackend {
 
 impl Backend for SimBackend {
     fn poll(&mut self, now_s: f64) -> Readings {
-        let end = (now_s / self.dt_s + 1e-9).floor() as u64;
-        let mut tilt = Vec::with_capacity(end.saturating_sub(self.samples) as usize);
-        while self.samples < end {
-            self.stage.advance(self.dt_s);
-            self.samples += 1;
-            let r = self.stage.read_tilt();
-            let q = if r.in_range {
-                Quality::Ok
-            } else {
-                Quality::OutOfRange
-            };
-            if r.in_range {
-                let c = self.tiltmeter.calibrate(r.raw);
-                self.meas_acc.0[0] += c[0];
-                self.meas_acc.0[1] += c[1];
-                self.meas_acc.1 += 1;
-            }
-            tilt.push((self.samples as f64 * self.dt_s, r.raw, q));
-        }
+        self.advance_samples_to(now_s);
+        let tilt = std::mem::take(&mut self.pending);
         let (s, n) = std::mem::take(&mut self.meas_acc);
         self.last_measured = (n > 0).then(|| [s[0] / f64::from(n), s[1] / f64::from(n)]);
         let leg_temps: Vec<(f64, Quality)> = self
@@ -849,13 +904,11 @@ impl Backend for SimBackend {
     }
 
     fn after_tick(&mut self, now_s: f64, out: &Outputs) {
-        if let Some(f) = self.observer.as_mut() {
-            f(&TickReport {
-                t_s: now_s,
-                outputs: out.clone(),
-                true_tilt_urad: self.stage.plate_tilt_urad(),
-                measured_tilt_urad: self.last_measured,
-            });
+        if self.observer.is_some() {
+            let r = self.report(now_s, out);
+            if let Some(f) = self.observer.as_mut() {
+                f(&r);
+            }
         }
     }
 }
