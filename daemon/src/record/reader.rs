@@ -179,7 +179,7 @@ impl SegmentInfo {
     }
 }
 
-/// The `*.h5` files directly in `dir`, sorted by name.
+/// The `*.h5` files directly in `dir`, sorted by name; empty files are skipped.
 pub fn find_segments(dir: &Path) -> Result<Vec<PathBuf>, RecordError> {
     let io = |source| RecordError::Io {
         path: dir.to_path_buf(),
@@ -190,6 +190,12 @@ pub fn find_segments(dir: &Path) -> Result<Vec<PathBuf>, RecordError> {
     for e in std::fs::read_dir(dir).map_err(io)? {
         let p = e.map_err(io)?.path();
         if p.is_file() && p.extension().is_some_and(|x| x == "h5") {
+            // An empty file holds nothing to read (a segment whose creation was cut short
+            // by a crash): skipped, so that it does not stop the rest being read.
+            if std::fs::metadata(&p).is_ok_and(|m| m.len() == 0) {
+                tracing::warn!(path = %p.display(), "skipping an empty .h5 file");
+                continue;
+            }
             v.push(p);
         }
     }

@@ -116,12 +116,36 @@ impl SegmentWriter {
         if path.exists() {
             return Err(RecordError::Exists(path.to_path_buf()));
         }
-        let legs = meta.leg_names.len().max(1);
-        let e = |w: &str| h5(path, w);
-        let file = File::with_options()
+        let file = match File::with_options()
             .with_fapl(|p| p.libver_latest())
             .create_excl(path)
-            .map_err(e("create the file"))?;
+        {
+            Ok(f) => f,
+            Err(err) => {
+                // A full disk fails the superblock write after the file was made: the
+                // empty file left would trip every reader of the folder. Removed only
+                // when empty (an exclusive create that lost a race leaves another's file).
+                if std::fs::metadata(path).is_ok_and(|m| m.len() == 0) {
+                    let _ = std::fs::remove_file(path);
+                }
+                return Err(h5(path, "create the file")(err));
+            }
+        };
+        // This call made the file: if it cannot be completed, it holds no rows and goes.
+        Self::complete(file, path, meta, opts).inspect_err(|_| {
+            let _ = std::fs::remove_file(path);
+        })
+    }
+
+    /// The rest of [`SegmentWriter::create`], on the file it has just made.
+    fn complete(
+        file: File,
+        path: &Path,
+        meta: &SegmentMeta,
+        opts: &LayoutOptions,
+    ) -> Result<Self, RecordError> {
+        let legs = meta.leg_names.len().max(1);
+        let e = |w: &str| h5(path, w);
         let root: &Location = &file;
         (|| -> hdf5::Result<()> {
             attr_num(root, "layout_version", LAYOUT_VERSION)?;
