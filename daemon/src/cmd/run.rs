@@ -91,15 +91,9 @@ pub fn run_daemon(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> 
         eprintln!("stiltd: --duration {d}: allowed a positive number of seconds");
         return ExitCode::from(2);
     }
-    let rt = match tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-    {
+    let rt = match super::current_thread_runtime() {
         Ok(rt) => rt,
-        Err(e) => {
-            eprintln!("stiltd: cannot start the runtime: {e}");
-            return ExitCode::FAILURE;
-        }
+        Err(code) => return code,
     };
     match rt.block_on(serve(cfg, config_path, o)) {
         Ok(()) => ExitCode::SUCCESS,
