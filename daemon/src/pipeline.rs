@@ -34,6 +34,8 @@ pub enum Command {
     SetTiltGains(LoopGains),
     /// New gains for every leg loop (bumpless).
     SetLegGains(LoopGains),
+    /// A tilt correction held in `temperature` mode, µrad per axis (a step).
+    SetTiltCorrection([f64; 2]),
 }
 
 #[derive(Debug, Default, Clone)]
@@ -279,6 +281,17 @@ impl Pipeline {
                 (
                     EventKind::Gains,
                     format!("tilt_loop: {} → {}", gains_text(&old), gains_text(&g)),
+                )
+            }
+            Command::SetTiltCorrection(c) => {
+                let old = self.controller.held_correction_urad();
+                self.controller.set_held_correction_urad(c);
+                (
+                    EventKind::Setpoint,
+                    format!(
+                        "held tilt correction µrad: [{}, {}] → [{}, {}]",
+                        old[0], old[1], c[0], c[1]
+                    ),
                 )
             }
             Command::SetLegGains(g) => {

@@ -548,6 +548,33 @@ impl Loop {
                 }
                 Command::SetManualPower(p)
             }
+            ControlRequest::SetTiltCorrection(c) => {
+                let mode = self.pipeline.controller().mode();
+                if mode != Mode::Temperature {
+                    return refuse(
+                        "mode",
+                        format!(
+                            "a held tilt correction applies in temperature mode only (mode is {mode}); switch mode first"
+                        ),
+                    );
+                }
+                let lim = self.cfg.control.tilt_output_limit_urad;
+                let mut new = self.pipeline.controller().held_correction_urad();
+                for (k, name) in ["x_urad", "y_urad"].iter().enumerate() {
+                    if let Some(v) = c[k] {
+                        if !v.is_finite() || v.abs() > lim {
+                            return refuse(
+                                name,
+                                format!(
+                                    "{v} is not allowed: |correction| ≤ control.tilt_output_limit_urad = {lim} µrad"
+                                ),
+                            );
+                        }
+                        new[k] = v;
+                    }
+                }
+                Command::SetTiltCorrection(new)
+            }
             ControlRequest::SetTiltGains(g) => {
                 check_gains(&g)?;
                 Command::SetTiltGains(g)
@@ -719,6 +746,9 @@ fn describe(c: &Command) -> String {
         Command::SetTiltTarget(t) => format!("tilt target → [{}, {}] µrad", t[0], t[1]),
         Command::SetLegBias(b) => format!("leg bias → {b} °C"),
         Command::SetManualPower(p) => format!("manual power → {p} W"),
+        Command::SetTiltCorrection(c) => {
+            format!("held tilt correction → [{}, {}] µrad", c[0], c[1])
+        }
         Command::SetTiltGains(g) => format!(
             "tilt loop gains → kp {} ti_s {:?} td_s {}",
             g.kp, g.ti_s, g.td_s

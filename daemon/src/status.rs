@@ -180,6 +180,9 @@ pub enum ControlRequest {
     SetLegGains(LoopGains),
     /// Acknowledge one alarm by id, or all when `None`.
     Acknowledge(Option<String>),
+    /// A tilt correction held in `temperature` mode, µrad; `None` keeps that axis's.
+    /// Applied at once (a step); cleared by a change of mode.
+    SetTiltCorrection([Option<f64>; 2]),
     /// Reread the configuration file.
     Reload,
 }

@@ -15,6 +15,7 @@ use stilt_daemon::status::ControlRequest;
 fn valid_body(path: &str) -> &'static str {
     match path {
         "/v1/setpoint/tilt" => r#"{"x_urad": 1.5}"#,
+        "/v1/tilt-correction" => r#"{"y_urad": -2.0}"#,
         "/v1/setpoint/leg-bias" => r#"{"bias_c": 25.0}"#,
         "/v1/manual-power" => r#"{"power_w": 0.5}"#,
         "/v1/mode" => r#"{"mode": "temperature"}"#,
@@ -35,10 +36,15 @@ async fn every_change_needs_an_operator_token() {
     assert!(changes.len() >= 7, "{changes:?}");
     for r in changes {
         let fake = fake_loop(&cfg, Behaviour::Answer, 16);
-        if r.path == "/v1/manual-power" {
+        let needs = match r.path {
+            "/v1/manual-power" => Some(stilt_config::Mode::Manual),
+            "/v1/tilt-correction" => Some(stilt_config::Mode::Temperature),
+            _ => None,
+        };
+        if let Some(m) = needs {
             fake.status.send_modify(|s| {
                 let mut n = (**s).clone();
-                n.mode = stilt_config::Mode::Manual;
+                n.mode = m;
                 *s = std::sync::Arc::new(n);
             });
         }
@@ -284,6 +290,31 @@ fn bad_inputs() -> Vec<Case> {
             Some("x_urad"),
         ),
         (put.clone(), tilt, j, s(r#"{}"#), 422, Some("x_urad")),
+        // The held correction: within ±control.tilt_output_limit_urad (100 µrad by default).
+        (
+            put.clone(),
+            "/v1/tilt-correction",
+            j,
+            s(r#"{"x_urad": 100.5}"#),
+            422,
+            Some("x_urad"),
+        ),
+        (
+            put.clone(),
+            "/v1/tilt-correction",
+            j,
+            s(r#"{}"#),
+            422,
+            Some("x_urad"),
+        ),
+        (
+            put.clone(),
+            "/v1/tilt-correction",
+            j,
+            s(r#"{"x_urad": 1, "z_urad": 1}"#),
+            400,
+            Some("z_urad"),
+        ),
         (
             put.clone(),
             tilt,

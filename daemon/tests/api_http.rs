@@ -82,6 +82,7 @@ fn http_status(r: Result<impl Sized, ClientError>) -> u16 {
 fn valid_body(path: &str) -> Value {
     serde_json::from_str(match path {
         "/v1/setpoint/tilt" => r#"{"y_urad": -1.0}"#,
+        "/v1/tilt-correction" => r#"{"x_urad": 0.5}"#,
         "/v1/setpoint/leg-bias" => r#"{"bias_c": 24.5}"#,
         "/v1/manual-power" => r#"{"power_w": 0.8}"#,
         "/v1/mode" => r#"{"mode": "level"}"#,
@@ -246,6 +247,12 @@ async fn the_api_in_front_of_the_simulated_stage() {
         let op = client(&b, Some(OPERATOR));
         for r in routes().into_iter().filter(|r| r.need == Need::Change) {
             let body = valid_body(r.path);
+            if r.path == "/v1/tilt-correction" {
+                // Held in temperature mode only: in level mode the loop answers 409.
+                assert_eq!(change(&op, &r.method, r.path, &body), 409);
+                let t = serde_json::json!({"mode": "temperature"});
+                assert_eq!(change(&op, &axum::http::Method::PUT, "/v1/mode", &t), 200);
+            }
             // Status is published after each tick: wait a few ticks (50 ms each at this
             // speed) so earlier changes show before, and wrong ones would show after.
             std::thread::sleep(TICKS_3);

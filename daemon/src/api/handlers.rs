@@ -248,6 +248,46 @@ pub async fn set_tilt(
         .map(Json)
 }
 
+/// `PUT /v1/tilt-correction`: a tilt correction held in `temperature` mode (the loop
+/// refuses it in any other mode).
+pub async fn set_tilt_correction(
+    State(st): State<AppState>,
+    Extension(caller): Extension<Caller>,
+    JsonBody(b): JsonBody<TiltCorrectionBody>,
+) -> Result<Json<ChangeReply>, ApiError> {
+    let lim = st.inner.config.control.tilt_output_limit_urad;
+    let mut c = [None, None];
+    for (k, (field, v)) in [("x_urad", b.x_urad), ("y_urad", b.y_urad)]
+        .into_iter()
+        .enumerate()
+    {
+        if let Some(v) = v {
+            c[k] = Some(
+                check(
+                    field,
+                    v,
+                    -lim,
+                    true,
+                    lim,
+                    true,
+                    "µrad (control.tilt_output_limit_urad)",
+                )
+                .map_err(|e| invalid(&st, e))?,
+            );
+        }
+    }
+    if c == [None, None] {
+        return Err(invalid(
+            &st,
+            ApiError::invalid("x_urad", "give x_urad, y_urad or both"),
+        ));
+    }
+    let asked = format!("held tilt correction µrad: x={:?} y={:?}", c[0], c[1]);
+    submit(&st, &caller, ControlRequest::SetTiltCorrection(c), asked)
+        .await
+        .map(Json)
+}
+
 /// `PUT /v1/setpoint/leg-bias`.
 pub async fn set_bias(
     State(st): State<AppState>,

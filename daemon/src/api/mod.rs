@@ -239,6 +239,15 @@ fn table() -> Vec<(RouteSpec, MethodRouter<AppState>)> {
         (
             spec(
                 Method::PUT,
+                "/v1/tilt-correction",
+                Change,
+                "Hold a tilt correction in temperature mode (a step)",
+            ),
+            put(handlers::set_tilt_correction),
+        ),
+        (
+            spec(
+                Method::PUT,
                 "/v1/setpoint/leg-bias",
                 Change,
                 "New common leg temperature bias (ramped)",

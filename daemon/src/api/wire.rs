@@ -533,6 +533,18 @@ impl ConfigWire {
     }
 }
 
+/// `PUT /v1/tilt-correction`: either axis or both; a missing axis keeps its value.
+#[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq)]
+#[serde(deny_unknown_fields)]
+pub struct TiltCorrectionBody {
+    /// Held correction for x, µrad.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub x_urad: Option<f64>,
+    /// Held correction for y, µrad.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub y_urad: Option<f64>,
+}
+
 /// `PUT /v1/setpoint/tilt`: either axis or both; a missing axis keeps its target.
 #[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq)]
 #[serde(deny_unknown_fields)]

@@ -105,6 +105,8 @@ pub struct Controller {
     power_w: Vec<f64>,
     last_now_s: Option<f64>,
     any_leg_saturated: bool,
+    /// Tilt correction held in `temperature` mode, µrad per axis (open-loop tilt drive).
+    held_correction_urad: [f64; 2],
     last_leg_sp: Vec<f64>,
     last_leg_y: Vec<f64>,
 }
@@ -166,6 +168,7 @@ impl Controller {
             power_w: vec![0.0; cfg.legs.len()],
             last_now_s: None,
             any_leg_saturated: false,
+            held_correction_urad: [0.0; 2],
             last_leg_sp: vec![f64::NAN; cfg.legs.len()],
             last_leg_y: vec![f64::NAN; cfg.legs.len()],
             control: c,
@@ -177,9 +180,27 @@ impl Controller {
         self.mode
     }
 
-    /// Changes the mode from the next tick on; returns the previous mode.
+    /// Changes the mode from the next tick on; returns the previous mode. A change of
+    /// mode clears the held tilt correction (see [`Self::set_held_correction_urad`]).
     pub fn set_mode(&mut self, mode: Mode) -> Mode {
+        if mode != self.mode {
+            self.held_correction_urad = [0.0; 2];
+        }
         std::mem::replace(&mut self.mode, mode)
+    }
+
+    /// The tilt correction held in `temperature` mode, µrad per axis.
+    pub fn held_correction_urad(&self) -> [f64; 2] {
+        self.held_correction_urad
+    }
+
+    /// Holds a tilt correction in `temperature` mode: each leg's setpoint becomes its bias
+    /// plus the geometry's offset for this correction, at once (a step, for open-loop
+    /// tests of the tilt plant). The tilt loops track it, so switching to `level` goes on
+    /// from it bumplessly. Ignored in other modes; cleared by a change of mode. The caller
+    /// checks it against `control.tilt_output_limit_urad`.
+    pub fn set_held_correction_urad(&mut self, c: [f64; 2]) {
+        self.held_correction_urad = c.map(|v| if v.is_finite() { v } else { 0.0 });
     }
 
     /// The tilt target per axis, µrad.
@@ -303,10 +324,15 @@ impl Controller {
             }
             [axis_terms[0].out, axis_terms[1].out]
         } else {
+            let held = if self.mode == Mode::Temperature {
+                self.held_correction_urad
+            } else {
+                [0.0; 2]
+            };
             for k in 0..2 {
-                axis_terms[k] = self.axis_pid[k].track(self.tilt_sp[k].value, tilt(k), 0.0);
+                axis_terms[k] = self.axis_pid[k].track(self.tilt_sp[k].value, tilt(k), held[k]);
             }
-            [0.0, 0.0]
+            held
         };
         let offsets = self.geometry.temperature_offsets_for_tilt(correction);
         let leg_sp: Vec<f64> = (0..n)

@@ -202,9 +202,8 @@ pub fn fake_loop(cfg: &Config, behaviour: Behaviour, row_capacity: usize) -> Fak
     let received = Arc::new(Mutex::new(Vec::new()));
     let rec = received.clone();
     let st = status_tx.clone();
-    let (settings_tx, settings_rx) = watch::channel(Arc::new(Settings::from_config(Arc::new(
-        cfg.clone(),
-    ))));
+    let (settings_tx, settings_rx) =
+        watch::channel(Arc::new(Settings::from_config(Arc::new(cfg.clone()))));
     let max_power = cfg
         .legs
         .iter()
@@ -289,6 +288,15 @@ fn apply(
             }
             assert!(*p <= max_power, "the API let an out-of-range power through");
             format!("manual power W: ? → {p}")
+        }
+        ControlRequest::SetTiltCorrection(c) => {
+            if s.mode != Mode::Temperature {
+                return Err(Refused {
+                    field: "mode".into(),
+                    message: "a held tilt correction applies in temperature mode only".into(),
+                });
+            }
+            format!("held tilt correction: … → {c:?}")
         }
         ControlRequest::SetTiltGains(g) => format!("tilt gains: … → kp {}", g.kp),
         ControlRequest::SetLegGains(g) => format!("leg gains: … → kp {}", g.kp),
