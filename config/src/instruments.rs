@@ -193,6 +193,7 @@ fn framing(
 fn link(v: &mut V<'_>, table: &str, raw: RawSerial, d: LinkDefaults) -> Option<SerialLink> {
     let key = |k: &str| format!("instruments.{table}.{k}");
     let framing = framing(v, table, &raw, d.modbus);
+    let port_from_map = raw.port.is_none() && d.map_port.is_some();
     let port = match raw.port.or(d.map_port) {
         Some(p) if p.trim().is_empty() => {
             v.err(
@@ -228,6 +229,7 @@ fn link(v: &mut V<'_>, table: &str, raw: RawSerial, d: LinkDefaults) -> Option<S
     let retries = v.int(&key("retries"), raw.retries, Some(1), 0, 10);
     Some(SerialLink {
         port: port?,
+        port_from_map,
         baud: baud? as u32,
         framing: framing?,
         timeout_ms: timeout? as u64,

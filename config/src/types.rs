@@ -367,6 +367,8 @@ pub struct Instruments {
 pub struct SerialLink {
     /// Device path, e.g. `/dev/serial/by-id/…` or `/dev/pts/3`.
     pub port: String,
+    /// Whether `port` came from the port map (the table named none).
+    pub port_from_map: bool,
     /// Baud rate.
     pub baud: u32,
     /// Character format: data bits, parity, stop bits (`parity`, `data_bits`, `stop_bits`;
