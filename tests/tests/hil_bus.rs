@@ -1,10 +1,11 @@
 //! A thermometer bus over real serial I/O: `stilt-hil-sim` emulates two Modbus units on one
 //! pty (taking them from the stage file it is given), and `stiltd run` polls both in turn on
 //! that one line, in real time (≈ 10 s). A `no_reply` fault on unit 2 must mark only the leg
-//! unit 2 reads and move only unit 2's counters (`thermometer@2`); unit 1's legs stay usable
+//! unit 2 reads and move only unit 2's counters (`thermometer@2`, in the status lines, the
+//! summary and `/metrics`); unit 1's legs stay usable
 //! and the line stays open; everything recovers when the fault clears.
 
-use std::io::{BufRead, BufReader, Read};
+use std::io::{BufRead, BufReader, Read, Write};
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 
@@ -75,7 +76,7 @@ fn a_silent_unit_on_the_thermometer_bus_marks_only_its_leg_and_recovers() {
     let m = std::fs::read_to_string(&map).unwrap();
     assert!(m.contains("thermometer_unit = 1"), "{m}");
 
-    let out = Command::new(bin("stiltd"))
+    let mut daemon = Command::new(bin("stiltd"))
         .current_dir(&dir)
         .args(["run", "--config"])
         .arg(&stage)
@@ -91,8 +92,35 @@ fn a_silent_unit_on_the_thermometer_bus_marks_only_its_leg_and_recovers() {
             "--listen",
             "127.0.0.1:0",
         ])
-        .output()
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
         .unwrap();
+    let started = Instant::now();
+    let daemon_err = daemon.stderr.take().unwrap();
+    let (tx, rx) = std::sync::mpsc::channel();
+    let relay = std::thread::spawn(move || {
+        let mut all = String::new();
+        for line in BufReader::new(daemon_err).lines().map_while(Result::ok) {
+            let _ = tx.send(line.clone());
+            all.push_str(&line);
+            all.push('\n');
+        }
+        all
+    });
+    let addr = loop {
+        let line = rx
+            .recv_timeout(Duration::from_secs(10))
+            .expect("the daemon announces its API");
+        if let Some(u) = line.split("API on http://").nth(1) {
+            break u.trim().to_string();
+        }
+    };
+    // After unit 2's silence (simulated 2 s to 6 s), its counters show in the metrics too.
+    std::thread::sleep(Duration::from_secs(8).saturating_sub(started.elapsed()));
+    let metrics = get(&addr, "/metrics");
+    let out = daemon.wait_with_output().unwrap();
+    let stderr = relay.join().unwrap();
     let _ = Command::new("kill")
         .arg("-TERM")
         .arg(sim.id().to_string())
@@ -108,7 +136,6 @@ fn a_silent_unit_on_the_thermometer_bus_marks_only_its_leg_and_recovers() {
     assert!(sim.wait().unwrap().success(), "{sim_err}");
     assert!(t0.elapsed() < Duration::from_secs(15), "{:?}", t0.elapsed());
 
-    let stderr = String::from_utf8_lossy(&out.stderr).into_owned();
     assert_eq!(out.status.code(), Some(0), "stderr:\n{stderr}");
     assert!(!stderr.contains("panicked"), "{stderr}");
     let lines: Vec<Value> = String::from_utf8_lossy(&out.stdout)
@@ -166,6 +193,22 @@ fn a_silent_unit_on_the_thermometer_bus_marks_only_its_leg_and_recovers() {
         "{last}"
     );
 
+    // The same counters in the metrics, one series per unit (labels channel and port).
+    let series = |name: &str, channel: &str| -> f64 {
+        metrics
+            .lines()
+            .find(|l| l.starts_with(&format!("{name}{{channel=\"{channel}\"")))
+            .and_then(|l| l.rsplit(' ').next())
+            .and_then(|v| v.parse().ok())
+            .unwrap_or_else(|| panic!("no {name} for {channel} in\n{metrics}"))
+    };
+    assert!(series("stiltd_channel_timeouts_total", "thermometer@2") >= 4.0);
+    assert_eq!(
+        series("stiltd_channel_timeouts_total", "thermometer@1"),
+        0.0
+    );
+    assert!(series("stiltd_channel_requests_total", "thermometer@1") >= 20.0);
+
     // The simulator's own account: unit 2 lost replies, unit 1 none; each heard the other.
     let sim_summary: Value = serde_json::from_str(sim_rest.lines().last().unwrap()).unwrap();
     let unit = |u: u64| {
@@ -187,4 +230,20 @@ fn a_silent_unit_on_the_thermometer_bus_marks_only_its_leg_and_recovers() {
         "{sim_summary}"
     );
     assert!(unit(2)["answered"].as_u64().unwrap() >= 4, "{sim_summary}");
+}
+
+/// A plain HTTP/1.0 GET on loopback; the body.
+fn get(addr: &str, path: &str) -> String {
+    let mut c = std::net::TcpStream::connect(addr).unwrap();
+    c.set_read_timeout(Some(Duration::from_secs(5))).unwrap();
+    write!(c, "GET {path} HTTP/1.0\r\nHost: {addr}\r\n\r\n").unwrap();
+    let mut r = String::new();
+    c.read_to_string(&mut r).unwrap();
+    assert!(
+        r.starts_with("HTTP/1.0 200") || r.starts_with("HTTP/1.1 200"),
+        "{r}"
+    );
+    r.split_once("\r\n\r\n")
+        .map(|(_, b)| b.to_string())
+        .unwrap_or_default()
 }
