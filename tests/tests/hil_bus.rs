@@ -2,8 +2,8 @@
 //! pty (taking them from the stage file it is given), and `stiltd run` polls both in turn on
 //! that one line, in real time (≈ 10 s). A `no_reply` fault on unit 2 must mark only the leg
 //! unit 2 reads and move only unit 2's counters (`thermometer@2`, in the status lines, the
-//! summary and `/metrics`); unit 1's legs stay usable
-//! and the line stays open; everything recovers when the fault clears.
+//! summary and `/metrics`); unit 1's legs stay usable and the line stays open; everything
+//! recovers when the fault clears.
 
 use std::io::{BufRead, BufReader, Read, Write};
 use std::process::{Command, Stdio};
