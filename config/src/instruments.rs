@@ -3,6 +3,11 @@
 //!
 //! Precedence for a port, a baud rate or the thermometer's unit: the key in the
 //! instrument's own table, then the port map, then (baud and unit only) the default.
+//! The port map's unit is not used when the table lists `units` (a bus of several units:
+//! the list's first is then the default unit of legs that name none).
+//!
+//! Also here: each line's character format (`parity`, `data_bits`, `stop_bits`) and the
+//! thermometer bus rules (unit addresses, `legs[].thermometer_unit`).
 //! Errors in the port map file are located in that file.
 
 use std::path::{Path, PathBuf};
@@ -89,22 +94,107 @@ fn read_port_map(path: &Path, errors: &mut Vec<ConfigError>) -> Option<PortMap> 
     })
 }
 
-/// The shared serial keys of one instrument table.
-#[allow(clippy::too_many_arguments)]
-fn link(
+/// The serial keys every instrument table shares, as read.
+struct RawSerial {
+    port: Option<String>,
+    baud: Option<i64>,
+    parity: Option<String>,
+    data_bits: Option<i64>,
+    stop_bits: Option<i64>,
+    timeout_ms: Option<i64>,
+    retries: Option<i64>,
+}
+
+/// Defaults and the port map's values for one line.
+struct LinkDefaults {
+    map_port: Option<String>,
+    map_baud: Option<i64>,
+    baud: i64,
+    timeout_ms: i64,
+    /// Modbus RTU: 8 data bits, 11-bit characters, 8E1 by default.
+    modbus: bool,
+}
+
+/// The character format of one line. Modbus RTU (MODBUS over Serial Line V1.02 §2.5.1,
+/// from memory) sends 11-bit characters: 1 start bit, 8 data bits, a parity bit and 1 stop
+/// bit, or no parity and 2 stop bits; even parity is the default. Other formats are refused
+/// on the Modbus line rather than warned about: the t1.5/t3.5 silences are defined in such
+/// characters, every device sold as Modbus RTU must offer the default 8E1, and a line set
+/// to the wrong format fails in ways (parity errors, frames split or merged) that are much
+/// harder to read than this error. The ASCII lines default to 8N1 (common practice).
+fn framing(
     v: &mut V<'_>,
     table: &str,
-    port: Option<String>,
-    map_port: Option<String>,
-    baud: Option<i64>,
-    map_baud: Option<i64>,
-    default_baud: i64,
-    timeout_ms: Option<i64>,
-    default_timeout_ms: i64,
-    retries: Option<i64>,
-) -> Option<SerialLink> {
+    raw: &RawSerial,
+    modbus: bool,
+) -> Option<stilt_protocol::modbus::timing::CharFormat> {
+    use stilt_protocol::modbus::timing::{CharFormat, Parity};
     let key = |k: &str| format!("instruments.{table}.{k}");
-    let port = match port.or(map_port) {
+    let parity = match raw.parity.as_deref() {
+        None if modbus => Some(Parity::Even),
+        None => Some(Parity::None),
+        Some("none") => Some(Parity::None),
+        Some("even") => Some(Parity::Even),
+        Some("odd") => Some(Parity::Odd),
+        Some(_) => {
+            v.err(
+                &key("parity"),
+                "unknown parity",
+                "\"none\", \"even\" or \"odd\"",
+            );
+            None
+        }
+    };
+    let data_bits = match (modbus, raw.data_bits) {
+        (true, Some(b)) if b != 8 => {
+            v.err(
+                &key("data_bits"),
+                "Modbus RTU sends 8 data bits per character (MODBUS over Serial Line §2.5.1)",
+                "8",
+            );
+            None
+        }
+        (true, b) => b.or(Some(8)),
+        (false, b) => v.int(&key("data_bits"), b, Some(8), 7, 8),
+    };
+    // No parity on the Modbus line takes a second stop bit (§2.5.1).
+    let default_stop = if modbus && parity == Some(Parity::None) {
+        2
+    } else {
+        1
+    };
+    let stop_bits = v.int(&key("stop_bits"), raw.stop_bits, Some(default_stop), 1, 2);
+    let f = CharFormat {
+        data_bits: data_bits? as u8,
+        parity: parity?,
+        stop_bits: stop_bits? as u8,
+    };
+    if modbus && f.bits() != 11 {
+        let at = if raw.stop_bits.is_some() {
+            "stop_bits"
+        } else {
+            "parity"
+        };
+        v.err(
+            &key(at),
+            format!(
+                "{f} is a {}-bit character; Modbus RTU characters are 11 bits (MODBUS over \
+                 Serial Line §2.5.1: no parity takes 2 stop bits)",
+                f.bits()
+            ),
+            "8E1 (the default), 8O1, or parity = \"none\" with stop_bits = 2",
+        );
+        return None;
+    }
+    Some(f)
+}
+
+/// The shared serial keys of one instrument table.
+fn link(v: &mut V<'_>, table: &str, raw: RawSerial, d: LinkDefaults) -> Option<SerialLink> {
+    let key = |k: &str| format!("instruments.{table}.{k}");
+    let framing = framing(v, table, &raw, d.modbus);
+    let port_from_map = raw.port.is_none() && d.map_port.is_some();
+    let port = match raw.port.or(d.map_port) {
         Some(p) if p.trim().is_empty() => {
             v.err(
                 &key("port"),
@@ -124,22 +214,24 @@ fn link(
     };
     let baud = v.int(
         &key("baud"),
-        baud.or(map_baud),
-        Some(default_baud),
+        raw.baud.or(d.map_baud),
+        Some(d.baud),
         BAUD.0,
         BAUD.1,
     );
     let timeout = v.int(
         &key("timeout_ms"),
-        timeout_ms,
-        Some(default_timeout_ms),
+        raw.timeout_ms,
+        Some(d.timeout_ms),
         1,
         60_000,
     );
-    let retries = v.int(&key("retries"), retries, Some(1), 0, 10);
+    let retries = v.int(&key("retries"), raw.retries, Some(1), 0, 10);
     Some(SerialLink {
         port: port?,
+        port_from_map,
         baud: baud? as u32,
+        framing: framing?,
         timeout_ms: timeout? as u64,
         retries: retries? as u8,
     })
@@ -232,14 +324,22 @@ fn tiltmeter(
     let link = link(
         v,
         "tiltmeter",
-        t.port,
-        map.tiltmeter.clone(),
-        t.baud,
-        map.tiltmeter_baud,
-        115_200,
-        t.timeout_ms,
-        100,
-        t.retries,
+        RawSerial {
+            port: t.port,
+            baud: t.baud,
+            parity: t.parity,
+            data_bits: t.data_bits,
+            stop_bits: t.stop_bits,
+            timeout_ms: t.timeout_ms,
+            retries: t.retries,
+        },
+        LinkDefaults {
+            map_port: map.tiltmeter.clone(),
+            map_baud: map.tiltmeter_baud,
+            baud: 115_200,
+            timeout_ms: 100,
+            modbus: false,
+        },
     );
     let poll = v.num(
         "instruments.tiltmeter.poll_hz",
@@ -330,31 +430,138 @@ fn tiltmeter(
     })
 }
 
+/// A Modbus unit address at `path`: 1 to 247 (MODBUS over Serial Line §2.2, from memory:
+/// 0 is the broadcast address, which no unit answers; 248–255 are reserved).
+fn unit_address(v: &mut V<'_>, path: &str, raw: i64) -> Option<u8> {
+    let max = i64::from(stilt_protocol::modbus::MAX_UNIT);
+    if (1..=max).contains(&raw) {
+        return Some(raw as u8);
+    }
+    let why = if raw == 0 {
+        "0 is the broadcast address, which no unit answers"
+    } else {
+        "not a Modbus unit address (248 to 255 are reserved)"
+    };
+    v.err(path, why, format!("an integer from 1 to {max}"));
+    None
+}
+
+/// Checks every `legs[].thermometer_unit` given (1 to 247). `None` if any is wrong (already
+/// reported); else the unit each leg names, if it names one.
+pub(crate) fn leg_units(v: &mut V<'_>, raw: &[RawLeg]) -> Option<Vec<Option<u8>>> {
+    let mut ok = true;
+    let out = raw
+        .iter()
+        .enumerate()
+        .map(|(i, l)| match l.thermometer_unit {
+            None => None,
+            Some(u) => {
+                let r = unit_address(v, &format!("legs[{i}].thermometer_unit"), u);
+                ok &= r.is_some();
+                r
+            }
+        })
+        .collect();
+    ok.then_some(out)
+}
+
+/// `instruments.thermometer.units`: a non-empty list of distinct addresses, if given.
+fn unit_list(v: &mut V<'_>, raw: Option<Vec<i64>>) -> Option<Option<Vec<u8>>> {
+    let path = "instruments.thermometer.units";
+    let Some(list) = raw else {
+        return Some(None);
+    };
+    if list.is_empty() {
+        v.err(
+            path,
+            "an empty list: the line would have no unit to read",
+            "one or more unit addresses from 1 to 247, e.g. [1, 2]",
+        );
+        return None;
+    }
+    let mut out: Vec<u8> = Vec::new();
+    let mut ok = true;
+    for u in list {
+        match unit_address(v, path, u) {
+            Some(a) if out.contains(&a) => {
+                v.err(
+                    path,
+                    format!("unit {a} is listed twice"),
+                    "each unit address once",
+                );
+                ok = false;
+            }
+            Some(a) => out.push(a),
+            None => ok = false,
+        }
+    }
+    ok.then_some(Some(out))
+}
+
+fn join_units(units: &[u8]) -> String {
+    units
+        .iter()
+        .map(u8::to_string)
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
 fn thermometer(
     v: &mut V<'_>,
     t: RawThermometerLink,
     map: &PortMap,
     legs: Option<&[Leg]>,
+    leg_units: Option<&[Option<u8>]>,
 ) -> Option<ThermometerLink> {
     let link = link(
         v,
         "thermometer",
-        t.port,
-        map.thermometer.clone(),
-        t.baud,
-        map.thermometer_baud,
-        19_200,
-        t.timeout_ms,
-        200,
-        t.retries,
+        RawSerial {
+            port: t.port,
+            baud: t.baud,
+            parity: t.parity,
+            data_bits: t.data_bits,
+            stop_bits: t.stop_bits,
+            timeout_ms: t.timeout_ms,
+            retries: t.retries,
+        },
+        LinkDefaults {
+            map_port: map.thermometer.clone(),
+            map_baud: map.thermometer_baud,
+            baud: 19_200,
+            timeout_ms: 200,
+            modbus: true,
+        },
     );
-    let unit = v.int(
-        "instruments.thermometer.unit",
-        t.unit.or(map.thermometer_unit),
-        Some(1),
-        1,
-        i64::from(stilt_protocol::modbus::MAX_UNIT),
-    );
+    let listed = t.units.is_some();
+    let units = unit_list(v, t.units);
+    // The default unit: the key, else (when no list is given) the port map's, else the
+    // list's first, else 1.
+    let unit = match (t.unit, &units) {
+        (Some(u), _) => unit_address(v, "instruments.thermometer.unit", u),
+        (None, Some(None)) => match map.thermometer_unit {
+            Some(u) => unit_address(v, "instruments.thermometer.unit", u),
+            None => Some(1),
+        },
+        (None, Some(Some(list))) => list.first().copied(),
+        (None, None) => None,
+    };
+    let units = match (units, unit) {
+        (Some(None), Some(u)) => Some(vec![u]),
+        (Some(Some(list)), Some(u)) => {
+            if !list.contains(&u) {
+                v.err(
+                    "instruments.thermometer.unit",
+                    format!("unit {u} is not in instruments.thermometer.units"),
+                    format!("one of {}", join_units(&list)),
+                );
+                None
+            } else {
+                Some(list)
+            }
+        }
+        _ => None,
+    };
     let names: Vec<&str> = RtdSensor::ALL.iter().map(|(_, n)| *n).collect();
     let sensor = match t.sensor.as_deref() {
         None => Some(RtdSensor::Pt100),
@@ -394,15 +601,94 @@ fn thermometer(
             }
         }
     }
+    let per_leg = match (legs, leg_units, &units, unit) {
+        (Some(legs), Some(given), Some(units), Some(unit)) => {
+            leg_unit_rules(v, legs, given, units, unit, listed)
+        }
+        _ => None,
+    };
     let stuck = stuck_after(v, "instruments.thermometer.stuck_after_s", t.stuck_after_s);
     Some(ThermometerLink {
         link: link?,
-        unit: unit? as u8,
+        unit: unit?,
+        units: units?,
+        leg_units: per_leg?,
         sensor: sensor?,
         poll_hz: poll?,
         stale_after_s: stale?,
         stuck_after_s: stuck?,
     })
+}
+
+/// Which unit reads each leg; every leg's unit declared, every declared unit read, and no
+/// two legs on one unit and channel. `listed`: whether `units` was written in the file.
+fn leg_unit_rules(
+    v: &mut V<'_>,
+    legs: &[Leg],
+    given: &[Option<u8>],
+    units: &[u8],
+    unit: u8,
+    listed: bool,
+) -> Option<Vec<u8>> {
+    let mut ok = true;
+    let resolved: Vec<u8> = legs
+        .iter()
+        .enumerate()
+        .map(|(i, _)| given.get(i).copied().flatten().unwrap_or(unit))
+        .collect();
+    for (i, u) in resolved.iter().enumerate() {
+        if !units.contains(u) {
+            let allowed = if listed {
+                format!(
+                    "one of instruments.thermometer.units: {}",
+                    join_units(units)
+                )
+            } else {
+                format!(
+                    "the line's only unit {unit}, or list every unit in instruments.thermometer.units = [..]"
+                )
+            };
+            v.err(
+                &format!("legs[{i}].thermometer_unit"),
+                format!("unit {u} is not on the thermometer line"),
+                allowed,
+            );
+            ok = false;
+        }
+    }
+    if ok {
+        for u in units {
+            if !resolved.contains(u) {
+                v.err(
+                    "instruments.thermometer.units",
+                    format!("no leg is read by unit {u}"),
+                    "only units that a leg's thermometer_unit names (or the default unit)",
+                );
+                ok = false;
+            }
+        }
+    }
+    // Legs naming the same unit the same way were compared with the legs themselves.
+    for i in 0..legs.len() {
+        for j in 0..i {
+            let same_spelling = given.get(i) == given.get(j);
+            if !same_spelling
+                && resolved[i] == resolved[j]
+                && legs[i].thermometer_channel == legs[j].thermometer_channel
+            {
+                v.err(
+                    &format!("legs[{i}].thermometer_channel"),
+                    format!(
+                        "unit {} channel {} is already read by legs[{j}]",
+                        resolved[i], legs[i].thermometer_channel
+                    ),
+                    "a unit and channel no other leg uses",
+                );
+                ok = false;
+            }
+        }
+    }
+    ok.then_some(resolved)
 }
 
 fn heater(
@@ -414,14 +700,22 @@ fn heater(
     let link = link(
         v,
         "heater",
-        h.port,
-        map.heater.clone(),
-        h.baud,
-        map.heater_baud,
-        115_200,
-        h.timeout_ms,
-        200,
-        h.retries,
+        RawSerial {
+            port: h.port,
+            baud: h.baud,
+            parity: h.parity,
+            data_bits: h.data_bits,
+            stop_bits: h.stop_bits,
+            timeout_ms: h.timeout_ms,
+            retries: h.retries,
+        },
+        LinkDefaults {
+            map_port: map.heater.clone(),
+            map_baud: map.heater_baud,
+            baud: 115_200,
+            timeout_ms: 200,
+            modbus: false,
+        },
     );
     let tol = v.num(
         "instruments.heater.readback_tolerance_w",
@@ -469,6 +763,7 @@ pub(crate) fn instruments(
     raw: RawInstruments,
     tm: Option<&Tiltmeter>,
     legs: Option<&[Leg]>,
+    leg_units: Option<&[Option<u8>]>,
     opts: &crate::LoadOptions,
 ) -> Option<Instruments> {
     let map_path: Option<PathBuf> = match (&opts.port_map, raw.port_map) {
@@ -521,7 +816,7 @@ pub(crate) fn instruments(
         }
     };
     let th = match raw.thermometer {
-        Some(t) => thermometer(v, t, &map, legs),
+        Some(t) => thermometer(v, t, &map, legs, leg_units),
         None => {
             need(v, "thermometer");
             None

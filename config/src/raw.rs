@@ -45,6 +45,9 @@ pub struct RawInstruments {
 pub struct RawTiltmeterLink {
     pub port: Option<String>,
     pub baud: Option<i64>,
+    pub parity: Option<String>,
+    pub data_bits: Option<i64>,
+    pub stop_bits: Option<i64>,
     pub poll_hz: Option<f64>,
     pub timeout_ms: Option<i64>,
     pub retries: Option<i64>,
@@ -76,7 +79,11 @@ pub struct RawLineField {
 pub struct RawThermometerLink {
     pub port: Option<String>,
     pub baud: Option<i64>,
+    pub parity: Option<String>,
+    pub data_bits: Option<i64>,
+    pub stop_bits: Option<i64>,
     pub unit: Option<i64>,
+    pub units: Option<Vec<i64>>,
     pub sensor: Option<String>,
     pub poll_hz: Option<f64>,
     pub timeout_ms: Option<i64>,
@@ -91,6 +98,9 @@ pub struct RawThermometerLink {
 pub struct RawHeaterLink {
     pub port: Option<String>,
     pub baud: Option<i64>,
+    pub parity: Option<String>,
+    pub data_bits: Option<i64>,
+    pub stop_bits: Option<i64>,
     pub timeout_ms: Option<i64>,
     pub retries: Option<i64>,
     pub readback: Option<bool>,
@@ -147,6 +157,7 @@ pub struct RawLeg {
     pub heater_resistance_ohm: Option<f64>,
     pub heater_max_power_w: Option<f64>,
     pub thermometer_channel: Option<i64>,
+    pub thermometer_unit: Option<i64>,
 }
 
 /// `[tiltmeter]`
@@ -389,6 +400,9 @@ fn allowed_keys(path: &str) -> String {
         "instruments.tiltmeter" => &[
             "port",
             "baud",
+            "parity",
+            "data_bits",
+            "stop_bits",
             "poll_hz",
             "timeout_ms",
             "retries",
@@ -408,7 +422,11 @@ fn allowed_keys(path: &str) -> String {
         "instruments.thermometer" => &[
             "port",
             "baud",
+            "parity",
+            "data_bits",
+            "stop_bits",
             "unit",
+            "units",
             "sensor",
             "poll_hz",
             "timeout_ms",
@@ -419,6 +437,9 @@ fn allowed_keys(path: &str) -> String {
         "instruments.heater" => &[
             "port",
             "baud",
+            "parity",
+            "data_bits",
+            "stop_bits",
             "timeout_ms",
             "retries",
             "readback",
@@ -435,6 +456,7 @@ fn allowed_keys(path: &str) -> String {
             "heater_resistance_ohm",
             "heater_max_power_w",
             "thermometer_channel",
+            "thermometer_unit",
         ],
         "tiltmeter" => &[
             "rate_hz",

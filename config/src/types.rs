@@ -355,7 +355,8 @@ pub struct Instruments {
     pub port_map: Option<PathBuf>,
     /// The two-axis tiltmeter.
     pub tiltmeter: TiltmeterLink,
-    /// The leg thermometer (Modbus RTU, RTD channels = `legs[].thermometer_channel`).
+    /// The leg thermometer line (Modbus RTU: one or more units, RTD channel of each leg =
+    /// `legs[].thermometer_channel` on unit `thermometer.leg_units[leg]`).
     pub thermometer: ThermometerLink,
     /// The heater supply (SCPI; channel n drives leg n−1 in file order).
     pub heater: HeaterLink,
@@ -366,8 +367,14 @@ pub struct Instruments {
 pub struct SerialLink {
     /// Device path, e.g. `/dev/serial/by-id/…` or `/dev/pts/3`.
     pub port: String,
-    /// Baud rate (8 data bits, no parity, 1 stop bit).
+    /// Whether `port` came from the port map (the table named none).
+    pub port_from_map: bool,
+    /// Baud rate.
     pub baud: u32,
+    /// Character format: data bits, parity, stop bits (`parity`, `data_bits`, `stop_bits`;
+    /// 8E1 by default on the Modbus line, 8N1 on the others). It also sets the Modbus
+    /// silences ([`stilt_protocol::modbus::timing::silences`]).
+    pub framing: stilt_protocol::modbus::timing::CharFormat,
     /// Longest wait for a complete reply, milliseconds.
     pub timeout_ms: u64,
     /// Times a failed request is sent again (0 = once only).
@@ -434,8 +441,14 @@ impl RtdSensor {
 pub struct ThermometerLink {
     /// The serial line.
     pub link: SerialLink,
-    /// Modbus server address, 1–247.
+    /// The Modbus server address of legs that name none (`unit`, 1–247).
     pub unit: u8,
+    /// Every unit on this line (RS-485 multi-drop), in the order they are polled
+    /// (`units`; default `[unit]`). Each is read by at least one leg.
+    pub units: Vec<u8>,
+    /// The unit that reads each leg, in `[[legs]]` order (`legs[].thermometer_unit`, else
+    /// `unit`); the leg's channel on that unit is `legs[].thermometer_channel`.
+    pub leg_units: Vec<u8>,
     /// The sensors on every channel.
     pub sensor: RtdSensor,
     /// Scans read per second.

@@ -174,7 +174,9 @@ pub(crate) fn validate(
         .and_then(|s| s.name)
         .unwrap_or_else(|| "unnamed stage".into());
 
-    let legs = legs(&mut v, raw.legs.unwrap_or_default());
+    let raw_legs = raw.legs.unwrap_or_default();
+    let leg_units = crate::instruments::leg_units(&mut v, &raw_legs);
+    let legs = legs(&mut v, raw_legs, leg_units.as_deref());
     let limits = limits(&mut v, raw.limits.unwrap_or_default());
     let tiltmeter = tiltmeter(&mut v, raw.tiltmeter);
     let control = control(&mut v, raw.control);
@@ -184,10 +186,15 @@ pub(crate) fn validate(
     let interlocks = interlocks(&mut v, raw.interlocks.unwrap_or_default());
     let instruments = match raw.instruments {
         None => Some(None),
-        Some(i) => {
-            crate::instruments::instruments(&mut v, i, tiltmeter.as_ref(), legs.as_deref(), opts)
-                .map(Some)
-        }
+        Some(i) => crate::instruments::instruments(
+            &mut v,
+            i,
+            tiltmeter.as_ref(),
+            legs.as_deref(),
+            leg_units.as_deref(),
+            opts,
+        )
+        .map(Some),
     };
 
     // Rules across sections, checked only when their parts were valid.
@@ -305,7 +312,10 @@ pub(crate) fn validate(
     })
 }
 
-fn legs(v: &mut V<'_>, raw: Vec<RawLeg>) -> Option<Vec<Leg>> {
+/// `units`: each leg's `thermometer_unit` as written (`None` if one was invalid); two legs
+/// share a channel only if they name the same unit the same way (the instruments' rules
+/// resolve the default unit and check the rest).
+fn legs(v: &mut V<'_>, raw: Vec<RawLeg>, units: Option<&[Option<u8>]>) -> Option<Vec<Leg>> {
     if raw.len() < 3 {
         v.err_table(
             "legs",
@@ -421,7 +431,9 @@ fn legs(v: &mut V<'_>, raw: Vec<RawLeg>) -> Option<Vec<Leg>> {
                 );
                 ok = false;
             }
-            if out[i].thermometer_channel == out[j].thermometer_channel {
+            if out[i].thermometer_channel == out[j].thermometer_channel
+                && units.is_some_and(|u| u.get(i) == u.get(j))
+            {
                 v.err(
                     &format!("legs[{i}].thermometer_channel"),
                     format!("channel already read by legs[{j}]"),

@@ -112,7 +112,8 @@ pub struct RecordingStatus {
 /// Counters of one instrument channel (for status and metrics).
 #[derive(Debug, Clone, PartialEq, Default)]
 pub struct ChannelStatus {
-    /// Instrument name: `tiltmeter`, `thermometer`, `heater`.
+    /// Instrument name: `tiltmeter`, `thermometer`, `heater`, `heater_readback`, and on a
+    /// thermometer bus of several units one per unit, `thermometer@<unit>`.
     pub name: String,
     /// Serial port path (or `simulated`).
     pub port: String,

@@ -30,6 +30,11 @@
 //! | `disconnect` | all | – | nothing gets through: input is discarded, nothing is sent, queued replies are dropped |
 //! | `open_circuit` | heater | `channel` | that channel delivers no power and reads back 0 A |
 //!
+//! A thermometer fault may name one Modbus unit of the bus (`unit = 2`): then only that
+//! unit's replies (or values, for `stuck_value`) are affected, and the others answer as
+//! usual; without `unit` every unit is. A `disconnect` takes the whole line, so it takes no
+//! `unit`; a unit the stage's bus does not hold is refused when the rig starts.
+//!
 //! Faults end after `duration_s`; several may overlap. Errors name the fault's index
 //! (`fault[2]`, counted from 0 in file order), the key and what is allowed; parsing never panics.
 //!
@@ -103,6 +108,9 @@ pub struct Fault {
     pub at_s: f64,
     /// Length, simulated seconds.
     pub duration_s: f64,
+    /// On the thermometer bus: only this Modbus unit is affected (`unit = N`); `None`: every
+    /// unit on the line.
+    pub unit: Option<u8>,
 }
 
 impl Fault {
@@ -223,6 +231,25 @@ impl FaultSchedule {
         Ok(FaultSchedule { faults })
     }
 
+    /// Checks that every fault's `unit` is one the thermometer bus holds.
+    pub fn check_units(&self, units: &[u8], origin: &str) -> Result<(), FaultError> {
+        for (i, f) in self.faults.iter().enumerate() {
+            if let Some(u) = f.unit
+                && !units.contains(&u)
+            {
+                let list: Vec<String> = units.iter().map(u8::to_string).collect();
+                return Err(FaultError {
+                    origin: origin.to_owned(),
+                    index: Some(i),
+                    key: "unit".into(),
+                    problem: format!("unit {u} is not on this stage's thermometer bus"),
+                    allowed: format!("one of {}", list.join(", ")),
+                });
+            }
+        }
+        Ok(())
+    }
+
     /// Checks heater channels against the supply's channel count.
     pub fn check_heater_channels(&self, channels: u8, origin: &str) -> Result<(), FaultError> {
         for (i, f) in self.faults.iter().enumerate() {
@@ -241,14 +268,19 @@ impl FaultSchedule {
         Ok(())
     }
 
-    /// The merged faults acting on `device` at simulated time `t_s`.
+    /// The merged faults acting on `device` at simulated time `t_s` (on the thermometer:
+    /// only those for every unit).
     pub fn active(&self, device: DeviceKind, t_s: f64) -> ActiveFaults {
+        self.active_for(device, None, t_s)
+    }
+
+    /// The merged faults acting on `device` at `t_s` for Modbus unit `unit` (faults for every
+    /// unit and those naming this one); `None`: only faults for every unit.
+    pub fn active_for(&self, device: DeviceKind, unit: Option<u8>, t_s: f64) -> ActiveFaults {
         let mut a = ActiveFaults::default();
-        for f in self
-            .faults
-            .iter()
-            .filter(|f| f.device == device && f.is_active(t_s))
-        {
+        for f in self.faults.iter().filter(|f| {
+            f.device == device && f.is_active(t_s) && (f.unit.is_none() || f.unit == unit)
+        }) {
             match f.kind {
                 FaultKind::NoReply => a.no_reply = true,
                 FaultKind::LateReply { delay } => a.delay = a.delay.max(Some(delay)),
@@ -387,8 +419,28 @@ fn parse_fault(t: &toml::Table, i: usize, err: &ErrFn<'_>) -> Result<Fault, Faul
         }
         _ => {}
     }
+    let unit_allowed = "a Modbus unit address from 1 to 247 on the thermometer bus";
+    let unit = integer("unit", 1, 247, unit_allowed)?.map(|u| u as u8);
+    if unit.is_some() {
+        if device != DeviceKind::Thermometer {
+            return Err(err(
+                ix,
+                "unit",
+                format!("the {} has no units", device.name()),
+                "unit only with device = \"thermometer\"",
+            ));
+        }
+        if kind == FaultKind::Disconnect {
+            return Err(err(
+                ix,
+                "unit",
+                "a disconnect takes the whole line, not one unit".into(),
+                "no unit with kind = \"disconnect\" (use no_reply for one silent unit)",
+            ));
+        }
+    }
     for key in t.keys() {
-        let common = ["device", "kind", "at_s", "duration_s"];
+        let common = ["device", "kind", "at_s", "duration_s", "unit"];
         if !common.contains(&key.as_str()) && !extra.contains(&key.as_str()) {
             let mut allowed = common.join(", ");
             for e in extra {
@@ -408,6 +460,7 @@ fn parse_fault(t: &toml::Table, i: usize, err: &ErrFn<'_>) -> Result<Fault, Faul
         kind,
         at_s,
         duration_s,
+        unit,
     })
 }
 
@@ -530,6 +583,14 @@ mod tests {
             ("at_s = \"soon\"", 1, "at_s", "seconds"),
             ("colour = 3", 1, "colour", "duration_s"),
             ("kind = \"garbled\"\nbytes = 99", 1, "bytes", "1 to 16"),
+            ("unit = 2", 1, "unit", "thermometer"),
+            ("device = \"thermometer\"\nunit = 0", 1, "unit", "1 to 247"),
+            (
+                "device = \"thermometer\"\nkind = \"disconnect\"\nunit = 2",
+                1,
+                "unit",
+                "no_reply",
+            ),
         ];
         for (extra, index, key, allowed) in cases {
             // The second fault is the broken one: a base fault, then the base with `extra`
@@ -551,6 +612,30 @@ mod tests {
             let shown = e.to_string();
             assert!(shown.contains(&format!("fault[{index}].{key}")), "{shown}");
         }
+    }
+
+    #[test]
+    fn a_thermometer_fault_can_target_one_unit() {
+        let s = parse(
+            "[[fault]]\ndevice = \"thermometer\"\nkind = \"no_reply\"\nat_s = 1\nduration_s = 2\nunit = 2\n\
+             [[fault]]\ndevice = \"thermometer\"\nkind = \"bad_crc\"\nat_s = 5\nduration_s = 1\n",
+        )
+        .unwrap();
+        assert_eq!(s.faults()[0].unit, Some(2));
+        assert_eq!(s.faults()[1].unit, None);
+        let th = DeviceKind::Thermometer;
+        assert!(s.active_for(th, Some(2), 1.5).no_reply);
+        assert!(!s.active_for(th, Some(1), 1.5).no_reply);
+        assert!(
+            !s.active(th, 1.5).no_reply,
+            "a unit's fault is not the line's"
+        );
+        // A fault without a unit acts on every unit.
+        assert!(s.active_for(th, Some(1), 5.5).bad_crc && s.active_for(th, Some(2), 5.5).bad_crc);
+        assert!(s.check_units(&[1, 2], "t").is_ok());
+        let e = s.check_units(&[1, 3], "t").unwrap_err();
+        assert_eq!((e.index, e.key.as_str()), (Some(0), "unit"));
+        assert!(e.allowed.contains("1, 3"), "{e}");
     }
 
     #[test]

@@ -29,7 +29,9 @@
 //!               [--duration SECONDS] [--thermometer-unit N]
 //! ```
 //!
-//! - `CONFIG`: a stage config (`stilt_config::load_file`); without it, the built-in demo.
+//! - `CONFIG`: a stage config (`stilt_config::load_file_with` and the port map it has just
+//!   written); without it, the built-in demo. Its `[instruments.thermometer]` units become
+//!   the units of the emulated thermometer bus (hil-sim/README.md).
 //! - `--port-map PATH` (default `./hil-ports.toml`): where the [port map](crate::portmap) goes.
 //! - `--speed N` (default 1, up to 100000): simulated seconds per wall-clock second.
 //! - `--faults PATH`: a fault schedule ([`faults`]).
@@ -37,13 +39,15 @@
 //!   command changes it and before the reply to that message leaves, so a test sees what the
 //!   daemon commanded even if it kills the simulator.
 //! - `--duration SECONDS`: stop after this much wall-clock time (otherwise SIGTERM/SIGINT).
-//! - `--thermometer-unit N` (default 1): the thermometer's Modbus address.
+//! - `--thermometer-unit N` (default 1): the thermometer's Modbus address for a stage
+//!   without `[instruments]`.
 //!
 //! It opens one pty pair per instrument (`tokio_serial::SerialStream::pair()`), keeps the
 //! master side, closes its own slave fd so the daemon can open the slave path exclusively,
 //! writes the port map, and prints `ready` on stdout. On exit it prints one line of JSON:
 //! `wall_time_s`, `speed`, then [`rig::Summary`] (`sim_time_s`, per-instrument
-//! [`rig::LinkCounters`], `heater_power_w` per channel as last commanded, `heater_state`).
+//! [`rig::LinkCounters`], `thermometer_units` ([`rig::UnitSummary`]), `heater_power_w` per
+//! channel as last commanded, `heater_state`).
 //! Logs go to stderr (`RUST_LOG` filters them). While no one holds the slave open, reading the
 //! master fails with EIO; the simulator waits 50 ms and retries, so the daemon may connect
 //! late, disconnect and reconnect.

@@ -11,7 +11,13 @@
 //! out, so the instruments themselves stay fault-free except for `stuck_value` and
 //! `open_circuit`, which change what they measure.
 //!
-//! Main types: [`Rig`], [`Summary`], [`LinkCounters`].
+//! The thermometer line is a bus: it holds the units of the stage's
+//! `[instruments.thermometer]` (one by default), each a [`Thermometer`] reading its own legs.
+//! Every unit hears every frame and answers only its own address; a frame for no unit on
+//! the bus gets silence, as a Modbus server must. Reply faults naming a `unit` apply to that
+//! unit's replies only (recognised by their address byte).
+//!
+//! Main types: [`Rig`], [`Summary`], [`LinkCounters`], [`UnitSummary`].
 
 use std::collections::VecDeque;
 use std::time::Duration;
@@ -74,10 +80,33 @@ pub struct Summary {
     pub thermometer: LinkCounters,
     /// The heater supply's line.
     pub heater: LinkCounters,
+    /// Per unit of the thermometer bus, in address order.
+    pub thermometer_units: Vec<UnitSummary>,
     /// The power the master last commanded per channel (V²/R with the output on), W.
     pub heater_power_w: Vec<f64>,
     /// The supply's full state.
     pub heater_state: HeaterState,
+}
+
+/// What one thermometer unit of the bus served, for the exit line.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize)]
+pub struct UnitSummary {
+    /// The unit's Modbus address.
+    pub unit: u8,
+    /// Frames for this unit that it answered.
+    pub answered: u64,
+    /// Frames for other units (heard on the bus, not answered).
+    pub not_for_us: u64,
+    /// Replies of this unit lost to `no_reply` faults (or the queue bound).
+    pub replies_lost: u64,
+}
+
+/// One Modbus unit on the thermometer bus: the device and which leg each channel reads.
+struct ThermoUnit {
+    dev: Thermometer,
+    /// (channel, leg index) of every leg this unit reads.
+    legs: Vec<(u8, usize)>,
+    replies_lost: u64,
 }
 
 /// The simulated stage, its instruments and their faults.
@@ -85,7 +114,8 @@ pub struct Rig {
     stage: SimStage,
     faults: FaultSchedule,
     tilt: Tiltmeter,
-    thermo: Thermometer,
+    /// The thermometer bus: one or more units, all hearing every frame on the one line.
+    thermos: Vec<ThermoUnit>,
     heater: HeaterSupply,
     tilt_period_s: f64,
     tilt_n: u64,
@@ -96,8 +126,11 @@ pub struct Rig {
 }
 
 impl Rig {
-    /// A rig for the stage `cfg` describes, with its `[simulation]` physics, faults and the
-    /// thermometer's unit address. Fails if a fault names a heater channel the stage lacks.
+    /// A rig for the stage `cfg` describes, with its `[simulation]` physics and faults.
+    /// The thermometer bus holds the units of `cfg`'s `[instruments.thermometer]` (each
+    /// leg on its `thermometer_unit`), or, for a stage without `[instruments]`, one unit
+    /// at `thermometer_unit` reading every leg. Fails if a fault names a heater channel
+    /// or a thermometer unit the stage lacks.
     pub fn new(
         cfg: &Config,
         faults: FaultSchedule,
@@ -107,14 +140,41 @@ impl Rig {
         let resistances: Vec<f64> = cfg.legs.iter().map(|l| l.heater_resistance_ohm).collect();
         let heater = HeaterSupply::new(&resistances);
         faults.check_heater_channels(heater.channels(), "fault schedule")?;
-        let wired: Vec<usize> = cfg.legs.iter().map(|l| l.thermometer_channel).collect();
-        let silences = timing::silences(THERMOMETER_BAUD, CharFormat::RTU_DEFAULT).unwrap_or(
-            timing::Silences {
-                char_time: Duration::from_micros(573),
-                inter_char: timing::FIXED_INTER_CHAR,
-                inter_frame: timing::FIXED_INTER_FRAME,
-            },
-        );
+        let th = cfg.instruments.as_ref().map(|i| &i.thermometer);
+        let (units, leg_units): (Vec<u8>, Vec<u8>) = match th {
+            Some(t) => (t.units.clone(), t.leg_units.clone()),
+            None => (
+                vec![thermometer_unit],
+                vec![thermometer_unit; cfg.legs.len()],
+            ),
+        };
+        faults.check_units(&units, "fault schedule")?;
+        let framing = th.map_or(CharFormat::RTU_DEFAULT, |t| t.link.framing);
+        let silences = timing::silences(THERMOMETER_BAUD, framing).unwrap_or(timing::Silences {
+            char_time: Duration::from_micros(573),
+            inter_char: timing::FIXED_INTER_CHAR,
+            inter_frame: timing::FIXED_INTER_FRAME,
+        });
+        let mut sorted = units.clone();
+        sorted.sort_unstable();
+        let thermos = sorted
+            .iter()
+            .map(|&u| {
+                let legs: Vec<(u8, usize)> = cfg
+                    .legs
+                    .iter()
+                    .enumerate()
+                    .filter(|(i, _)| leg_units.get(*i) == Some(&u))
+                    .filter_map(|(i, l)| Some((u8::try_from(l.thermometer_channel).ok()?, i)))
+                    .collect();
+                let wired: Vec<usize> = legs.iter().map(|(c, _)| usize::from(*c)).collect();
+                ThermoUnit {
+                    dev: Thermometer::new(u, silences, &wired),
+                    legs,
+                    replies_lost: 0,
+                }
+            })
+            .collect();
         let rate = stage.tilt_rate_hz();
         let mut rig = Rig {
             tilt_period_s: if rate > 0.0 && rate.is_finite() {
@@ -125,7 +185,7 @@ impl Rig {
             stage,
             faults,
             tilt: Tiltmeter::new(),
-            thermo: Thermometer::new(thermometer_unit, silences, &wired),
+            thermos,
             heater,
             tilt_n: 0,
             next_scan_s: 0.0,
@@ -163,9 +223,22 @@ impl Rig {
         &self.tilt
     }
 
-    /// The thermometer (for its reported values).
+    /// The thermometer with the lowest address (for its reported values).
     pub fn thermometer(&self) -> &Thermometer {
-        &self.thermo
+        &self.thermos[0].dev
+    }
+
+    /// The thermometer unit at Modbus address `unit`, if the bus holds it.
+    pub fn thermometer_unit(&self, unit: u8) -> Option<&Thermometer> {
+        self.thermos
+            .iter()
+            .map(|t| &t.dev)
+            .find(|d| d.unit() == unit)
+    }
+
+    /// The bus's unit addresses, ascending.
+    pub fn thermometer_units(&self) -> Vec<u8> {
+        self.thermos.iter().map(|t| t.dev.unit()).collect()
     }
 
     /// Advances simulated time by `dt_s`, taking samples and switching faults on the way.
@@ -208,12 +281,19 @@ impl Rig {
             self.tilt_n += 1;
         }
         if self.next_scan_s <= now {
+            // Every unit scans at the first unit's rate (they are set alike in practice).
             let stage = &mut self.stage;
-            self.thermo
-                .scan(&mut |ch| stage.read_thermometer(usize::from(ch)));
-            self.next_scan_s += self.thermo.scan_period_s();
+            for t in &mut self.thermos {
+                let legs = &t.legs;
+                t.dev.scan(&mut |ch| {
+                    let &(_, leg) = legs.iter().find(|(c, _)| *c == ch)?;
+                    stage.read_leg_thermometer(leg)
+                });
+            }
+            let period = self.thermos[0].dev.scan_period_s();
+            self.next_scan_s += period;
             if self.next_scan_s <= now {
-                self.next_scan_s = now + self.thermo.scan_period_s();
+                self.next_scan_s = now + period;
             }
         }
     }
@@ -225,7 +305,12 @@ impl Rig {
             let a = self.faults.active(d, t);
             match d {
                 DeviceKind::Tiltmeter => self.tilt.set_stuck(a.stuck),
-                DeviceKind::Thermometer => self.thermo.set_stuck(a.stuck),
+                DeviceKind::Thermometer => {
+                    for th in &mut self.thermos {
+                        let u = Some(th.dev.unit());
+                        th.dev.set_stuck(self.faults.active_for(d, u, t).stuck);
+                    }
+                }
                 DeviceKind::Heater => {
                     self.heater.set_stuck(a.stuck);
                     for i in 0..usize::from(self.heater.channels()) {
@@ -239,7 +324,9 @@ impl Rig {
                 // The cable is pulled: whatever was half-received is lost.
                 match d {
                     DeviceKind::Tiltmeter => self.tilt.reset_input(),
-                    DeviceKind::Thermometer => self.thermo.reset_input(),
+                    DeviceKind::Thermometer => {
+                        self.thermos.iter_mut().for_each(|t| t.dev.reset_input())
+                    }
                     DeviceKind::Heater => self.heater.reset_input(),
                 }
                 let lost = self.outbox[i].len() as u64;
@@ -290,13 +377,17 @@ impl Rig {
         self.queue_replies(device, now, replies);
     }
 
+    /// Every unit hears every byte on the bus; each answers only frames for its own address.
     fn thermo_turn(&mut self, now: Duration, bytes: Option<&[u8]>, replies: &mut Vec<Vec<u8>>) {
-        let before = self.thermo.counters();
-        match bytes {
-            Some(b) => self.thermo.handle_bytes(now, b, replies),
-            None => self.thermo.handle_timeout(now, replies),
+        // Every unit sees the same frames, so the line's counts are the first unit's.
+        let before = self.thermos[0].dev.counters();
+        for t in &mut self.thermos {
+            match bytes {
+                Some(b) => t.dev.handle_bytes(now, b, replies),
+                None => t.dev.handle_timeout(now, replies),
+            }
         }
-        let after = self.thermo.counters();
+        let after = self.thermos[0].dev.counters();
         let l = &mut self.links[DeviceKind::Thermometer.index()];
         l.requests += (after.answered - before.answered)
             + (after.bad_frames - before.bad_frames)
@@ -310,11 +401,23 @@ impl Rig {
             return;
         }
         let i = device.index();
-        let a: ActiveFaults = self.faults.active(device, self.stage.time_s());
+        let line: ActiveFaults = self.faults.active(device, self.stage.time_s());
         for mut r in replies {
+            // On the thermometer bus a reply's first byte is its unit's address: faults for
+            // that unit apply to it, as well as those for the whole line.
+            let unit = (device == DeviceKind::Thermometer)
+                .then(|| r.first().copied())
+                .flatten();
+            let a = match unit {
+                Some(u) => self.faults.active_for(device, Some(u), self.stage.time_s()),
+                None => line.clone(),
+            };
             let link = &mut self.links[i];
             if a.no_reply || a.disconnect {
                 link.replies_lost += 1;
+                if let Some(t) = self.thermos.iter_mut().find(|t| Some(t.dev.unit()) == unit) {
+                    t.replies_lost += 1;
+                }
                 continue;
             }
             if let Some(n) = a.garble_bytes
@@ -346,7 +449,11 @@ impl Rig {
     /// When [`Self::handle_timeout`] or [`Self::poll_transmit`] next has work for `device`.
     pub fn poll_timeout(&self, device: DeviceKind) -> Option<Duration> {
         let frame = match device {
-            DeviceKind::Thermometer => self.thermo.poll_timeout(),
+            DeviceKind::Thermometer => self
+                .thermos
+                .iter()
+                .filter_map(|t| t.dev.poll_timeout())
+                .min(),
             _ => None,
         };
         let reply = self.outbox[device.index()].front().map(|(d, _)| *d);
@@ -402,6 +509,19 @@ impl Rig {
             tiltmeter: self.links[0],
             thermometer: self.links[1],
             heater: self.links[2],
+            thermometer_units: self
+                .thermos
+                .iter()
+                .map(|t| {
+                    let c = t.dev.counters();
+                    UnitSummary {
+                        unit: t.dev.unit(),
+                        answered: c.answered,
+                        not_for_us: c.not_for_us,
+                        replies_lost: t.replies_lost,
+                    }
+                })
+                .collect(),
             heater_power_w: heater_state
                 .channels
                 .iter()
@@ -435,6 +555,7 @@ mod tests {
             kind,
             at_s,
             duration_s,
+            unit: None,
         }
     }
 
@@ -507,6 +628,95 @@ mod tests {
             // 1 mK noise in the demo; 0.1 mΩ quantum ≈ 0.26 mK.
             assert!((back - t).abs() < 0.01, "{back} vs {t}");
         }
+    }
+
+    /// The demo stage with leg C on channel 0 of unit 2, on a two-unit thermometer bus.
+    fn bus() -> Config {
+        let text = format!(
+            "{}\n{}",
+            stilt_config::DEMO_SCENARIO.replace(
+                "thermometer_channel = 2\n",
+                "thermometer_channel = 0\nthermometer_unit = 2\n"
+            ),
+            "[instruments.tiltmeter]\nport = \"a\"\n\
+             [instruments.thermometer]\nport = \"b\"\nunit = 1\nunits = [2, 1]\n\
+             [instruments.heater]\nport = \"c\"\n"
+        );
+        stilt_config::load_str(&text, "bus").unwrap()
+    }
+
+    /// Reads `count` resistances from `unit` at `now`; the reply (if any) after t3.5.
+    fn unit_read(r: &mut Rig, unit: u8, count: u8, now: Duration) -> Option<Vec<f64>> {
+        let req = rtd::read_resistances(0, count).unwrap();
+        let mut tx = Vec::new();
+        encode_request(unit, &req, &mut tx).unwrap();
+        r.handle_input(DeviceKind::Thermometer, now, &tx);
+        let due = r.poll_timeout(DeviceKind::Thermometer)?;
+        r.handle_timeout(DeviceKind::Thermometer, due);
+        let raw = r.poll_transmit(DeviceKind::Thermometer, due)?;
+        // Exactly one unit answered: nothing else is queued.
+        assert_eq!(
+            r.poll_transmit(DeviceKind::Thermometer, due + ms(100)),
+            None
+        );
+        let (resp, _) = decode_response(&raw, unit, &req).unwrap().unwrap();
+        let ohms = rtd::parse_resistances(&resp, count).unwrap();
+        Some(
+            ohms.iter()
+                .map(|o| {
+                    o.map_or(f64::NAN, |o| {
+                        stilt_protocol::convert::PlatinumRtd::PT100
+                            .temperature(o)
+                            .unwrap()
+                    })
+                })
+                .collect(),
+        )
+    }
+
+    #[test]
+    fn a_bus_answers_only_its_own_units_and_a_unit_fault_hits_only_that_unit() {
+        let silent = Fault {
+            unit: Some(2),
+            ..fault(DeviceKind::Thermometer, FaultKind::NoReply, 2.0, 1.0)
+        };
+        let mut r = Rig::new(&bus(), FaultSchedule::new(vec![silent]), 9).unwrap();
+        assert_eq!(r.thermometer_units(), vec![1, 2]);
+        r.advance(1.0);
+        let legs = r.stage().truth().leg_temp_c;
+        // Unit 1 reads legs A and B on channels 0 and 1; unit 2 reads leg C on channel 0
+        // and has nothing wired on channel 1 ("open": no reading).
+        let u1 = unit_read(&mut r, 1, 2, ms(0)).unwrap();
+        let u2 = unit_read(&mut r, 2, 2, ms(10)).unwrap();
+        // 1 mK noise in the demo; 0.1 mΩ quantum ≈ 0.26 mK.
+        assert!((u1[0] - legs[0]).abs() < 0.01 && (u1[1] - legs[1]).abs() < 0.01);
+        assert!((u2[0] - legs[2]).abs() < 0.01 && u2[1].is_nan(), "{u2:?}");
+        // A frame for a unit the bus lacks (the CLI's unit 9 is not used: the stage has
+        // its own) gets silence from every unit (Modbus over Serial Line §2.2).
+        assert_eq!(unit_read(&mut r, 9, 2, ms(20)), None);
+        // While unit 2's no_reply fault is active, unit 1 still answers.
+        r.advance(1.5);
+        assert!(unit_read(&mut r, 1, 2, ms(30)).is_some());
+        assert_eq!(unit_read(&mut r, 2, 2, ms(40)), None);
+        r.advance(1.0);
+        assert!(unit_read(&mut r, 2, 2, ms(50)).is_some());
+        let s = r.summary();
+        let by = |u: u8| *s.thermometer_units.iter().find(|x| x.unit == u).unwrap();
+        assert_eq!((by(1).answered, by(1).replies_lost), (2, 0));
+        assert_eq!((by(2).answered, by(2).replies_lost), (3, 1));
+        // Each unit heard the other's frames and the stray one without answering.
+        assert_eq!(by(1).not_for_us, 4);
+        assert_eq!(s.thermometer.requests, 6);
+        assert_eq!(s.thermometer.replies_lost, 1);
+        // A fault naming a unit the bus lacks is refused when the rig starts.
+        let stray = Fault {
+            unit: Some(3),
+            ..fault(DeviceKind::Thermometer, FaultKind::NoReply, 0.0, 1.0)
+        };
+        let e = Rig::new(&bus(), FaultSchedule::new(vec![stray]), 1)
+            .err()
+            .unwrap();
+        assert_eq!(e.key, "unit");
     }
 
     #[test]
@@ -698,7 +908,7 @@ mod never_panic {
                         FaultKind::LateReply { delay: Duration::from_millis(3) },
                         FaultKind::StuckValue,
                     ]
-                    .map(|kind| Fault { device, kind, at_s: 0.5, duration_s: 1.0 })
+                    .map(|kind| Fault { device, kind, at_s: 0.5, duration_s: 1.0, unit: None })
                 })
                 .collect();
             let mut r = Rig::new(&cfg, FaultSchedule::new(faults), 1).unwrap();

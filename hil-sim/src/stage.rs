@@ -226,7 +226,13 @@ impl SimStage {
     /// One reading of thermometer `channel`, °C, or `None` for a channel no leg has.
     pub fn read_thermometer(&mut self, channel: usize) -> Option<f64> {
         let &(_, leg) = self.channels.iter().find(|(c, _)| *c == channel)?;
-        let l = &self.legs[leg];
+        self.read_leg_thermometer(leg)
+    }
+
+    /// One reading of leg `leg`'s thermometer, °C, or `None` for no such leg or a dead
+    /// sensor (a bus of several thermometer units maps its channels to legs itself).
+    pub fn read_leg_thermometer(&mut self, leg: usize) -> Option<f64> {
+        let l = self.legs.get(leg)?;
         let t = l.thermal.body_c() + l.thermometer_offset_k;
         // The noise is drawn even for a dead sensor, so a fault never shifts the others' noise.
         let noise = self.thermo_sigma_k * self.thermo_noise.gauss();

@@ -75,3 +75,66 @@ fn a_missing_file_is_a_clear_error() {
         "{stderr}"
     );
 }
+
+#[test]
+fn the_summary_lists_each_instrument_line_and_the_thermometer_units() {
+    // The shipped HIL stage: its ports come from the port map beside it.
+    let dir = workspace().join("config/examples/hil");
+    let out = command("stiltd", &dir)
+        .args(["check", "--config", "stage.toml"])
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success(), "{stdout}");
+    assert!(stdout.contains("instruments (port map "), "{stdout}");
+    assert!(
+        stdout.contains(
+            "thermometer  /dev/pts/102 (from the port map), 19200 baud 8E1, poll 2 Hz, timeout 150 ms, 1 retry"
+        ),
+        "{stdout}"
+    );
+    assert!(
+        stdout.contains("tiltmeter    /dev/pts/101 (from the port map), 115200 baud 8N1, poll 10 Hz, timeout 80 ms, 0 retries"),
+        "{stdout}"
+    );
+    assert!(
+        stdout.contains("unit 1 (default): A ch 0, B ch 1, C ch 2"),
+        "{stdout}"
+    );
+
+    // A two-unit bus with its own port and an odd-parity line, in a scratch folder.
+    let scratch = stilt_tests::scratch("check-bus");
+    let text = std::fs::read_to_string(workspace().join("config/examples/hardware-template.toml"))
+        .unwrap()
+        .replacen(
+            "thermometer_channel = 2\n",
+            "thermometer_channel = 0\nthermometer_unit = 7\n",
+            1,
+        )
+        .replace(
+            "unit = 1                          # Modbus",
+            "units = [1, 7]\nparity = \"odd\"\nunit = 1                          # Modbus",
+        );
+    std::fs::write(scratch.join("bus.toml"), &text).unwrap();
+    let out = command("stiltd", &scratch)
+        .args(["check", "--config", "bus.toml"])
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{stdout}{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(
+        stdout.contains("thermometer  /dev/serial/by-id/usb-thermometer-if00, 19200 baud 8O1"),
+        "{stdout}"
+    );
+    assert!(stdout.contains("2 unit(s):"), "{stdout}");
+    assert!(
+        stdout.contains("unit 1 (default): A ch 0, B ch 1\n"),
+        "{stdout}"
+    );
+    assert!(stdout.contains("unit 7: C ch 0\n"), "{stdout}");
+    assert!(!stdout.contains("from the port map"), "{stdout}");
+}

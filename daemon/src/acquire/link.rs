@@ -2,8 +2,10 @@
 //! [`Session`] over it for one request at a time.
 //!
 //! Main types: [`Opener`] (how a port is obtained: [`SerialOpener`] for real devices and
-//! pseudo-terminals, anything else in tests), [`Line`] (an instrument's connection with
-//! its counters and back-off) and [`Backoff`].
+//! pseudo-terminals, in the line's configured character format; anything else in tests),
+//! [`Line`] (an instrument's connection with its counters and back-off; on a bus,
+//! [`Line::request_counted`] also counts in the addressed unit's own channel) and
+//! [`Backoff`].
 //!
 //! Failure rules (one line each, with the reason):
 //! - an I/O error or EOF drops the port at once (a USB reset or a closed pty shows as EOF/EIO);
@@ -18,6 +20,7 @@ use std::io;
 use std::pin::Pin;
 use std::time::Duration;
 
+use stilt_protocol::modbus::timing::{CharFormat, Parity};
 use stilt_protocol::session::{Event, Exchange, Session, SessionConfig};
 use tokio::io::{AsyncRead, AsyncReadExt, AsyncWrite, AsyncWriteExt};
 use tokio::time::Instant;
@@ -39,42 +42,71 @@ pub trait Opener: Send {
     fn name(&self) -> String;
 }
 
-/// Opens a serial device (or a pty's slave side) with tokio-serial, exclusively, 8 data
-/// bits, the given parity, 1 stop bit, and
-/// clears its buffers. The path is resolved anew on every open (`resolve`), so a port map
+/// Opens a serial device (or a pty's slave side) with tokio-serial, exclusively, in the
+/// given character format (data bits, parity, stop bits), and clears its buffers. The path is resolved anew on every open (`resolve`), so a port map
 /// rewritten by a restarted simulator, or a by-id link that moved, is followed.
 pub struct SerialOpener {
     /// Gives the current path of the device.
     pub resolve: Box<dyn FnMut() -> String + Send>,
     /// Baud rate.
     pub baud: u32,
-    /// Parity (8 data bits and 1 stop bit always).
-    pub parity: tokio_serial::Parity,
+    /// Character format (`instruments.<name>.parity`, `data_bits`, `stop_bits`).
+    pub framing: CharFormat,
     /// The last path resolved (for status).
     pub last: String,
 }
 
 impl SerialOpener {
-    /// An opener for a fixed path.
+    /// An opener for a fixed path, 8N1.
     pub fn fixed(path: String, baud: u32) -> Self {
         let p = path.clone();
         SerialOpener {
             resolve: Box::new(move || p.clone()),
             baud,
-            parity: tokio_serial::Parity::None,
+            framing: CharFormat::EIGHT_N_1,
             last: path,
         }
     }
+}
+
+/// tokio-serial's settings for a character format (data bits 5–8, stop bits 1–2; the
+/// configuration allows 7–8 and 1–2).
+pub fn serial_settings(
+    f: CharFormat,
+) -> (
+    tokio_serial::DataBits,
+    tokio_serial::Parity,
+    tokio_serial::StopBits,
+) {
+    use tokio_serial::{DataBits, Parity as P, StopBits};
+    let data = match f.data_bits {
+        5 => DataBits::Five,
+        6 => DataBits::Six,
+        7 => DataBits::Seven,
+        _ => DataBits::Eight,
+    };
+    let parity = match f.parity {
+        Parity::None => P::None,
+        Parity::Even => P::Even,
+        Parity::Odd => P::Odd,
+    };
+    let stop = if f.stop_bits == 2 {
+        StopBits::Two
+    } else {
+        StopBits::One
+    };
+    (data, parity, stop)
 }
 
 impl Opener for SerialOpener {
     fn open(&mut self) -> io::Result<BoxPort> {
         use tokio_serial::{SerialPort, SerialPortBuilderExt};
         self.last = (self.resolve)();
+        let (data, parity, stop) = serial_settings(self.framing);
         let port = tokio_serial::new(&self.last, self.baud)
-            .data_bits(tokio_serial::DataBits::Eight)
-            .parity(self.parity)
-            .stop_bits(tokio_serial::StopBits::One)
+            .data_bits(data)
+            .parity(parity)
+            .stop_bits(stop)
             .flow_control(tokio_serial::FlowControl::None)
             .open_native_async()
             .map_err(io::Error::from)?;
@@ -249,6 +281,17 @@ impl Line {
         session: &mut Session<X>,
         req: X,
     ) -> Outcome<X::Reply> {
+        self.request_counted(session, req, None).await
+    }
+
+    /// [`Self::request`], also counting the request, its timeouts and bad replies in channel
+    /// `also` (a unit's own counters on a bus); the line's channel keeps the line's totals.
+    pub async fn request_counted<X: Exchange>(
+        &mut self,
+        session: &mut Session<X>,
+        req: X,
+        also: Option<usize>,
+    ) -> Outcome<X::Reply> {
         if self.ensure_open().await {
             // A new port: a fresh session, so nothing from before is taken as a reply.
             *session = Session::new(*session.config());
@@ -261,10 +304,13 @@ impl Line {
             after.bad_replies.saturating_sub(before.bad_replies),
         );
         self.shared.with(|s| {
-            let c = &mut s.channels[self.channel];
-            c.requests += 1;
-            c.timeouts += timeouts;
-            c.bad_frames += bad;
+            for ch in std::iter::once(self.channel).chain(also) {
+                if let Some(c) = s.channels.get_mut(ch) {
+                    c.requests += 1;
+                    c.timeouts += timeouts;
+                    c.bad_frames += bad;
+                }
+            }
         });
         let outcome = match result {
             Ok(Event::Reply { reply, .. }) => Outcome::Reply(reply),

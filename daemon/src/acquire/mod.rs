@@ -9,7 +9,9 @@
 //!
 //! - [`link`]: opening and reopening a port with back-off, driving a sans-IO session with a
 //!   timeout per request and bounded retries, counting timeouts and bad frames.
-//! - [`tilt`], [`thermo`], [`heater`]: the three instruments' loops.
+//! - [`tilt`], [`thermo`], [`heater`]: the three instruments' loops (the thermometer line
+//!   may be an RS-485 bus of several Modbus units, polled in turn by its one task, each
+//!   unit with its own counters `thermometer@<unit>`).
 //! - [`SerialBackend`]: `poll` (copy out, never blocks), `apply` (a `watch` send, never
 //!   blocks), `safe_off` (zero volts queued first, ahead of anything else).
 //! - [`FaultSink`]: a [`RowSink`] wrapper that writes the acquisition's fault events
@@ -51,6 +53,17 @@ pub const THERMOMETER: usize = 1;
 pub const HEATER: usize = 2;
 /// The heater's readback comparison (requests = comparisons, bad_frames = mismatches).
 pub const HEATER_READBACK: usize = 3;
+/// On a thermometer bus of several units, unit `units[k]`'s own counters are channel
+/// `FIRST_UNIT_CHANNEL + k`, named `thermometer@<unit>` (the `thermometer` channel keeps
+/// the line's totals). A line with one unit has no such channels.
+pub const FIRST_UNIT_CHANNEL: usize = 4;
+/// Thermometer channels per unit in the latest store (the RTD register map's 8).
+pub const CHANNELS_PER_UNIT: usize = 8;
+
+/// The name of a thermometer unit's own channel.
+pub fn unit_channel_name(unit: u8) -> String {
+    format!("thermometer@{unit}")
+}
 
 /// Most fault events kept for [`FaultSink`] before the oldest is dropped.
 const MAX_EVENTS: usize = 256;
@@ -104,7 +117,8 @@ pub struct HeaterCommand {
 /// Everything the tasks share. Locked only to copy values in or out.
 #[derive(Debug, Default)]
 pub struct Store {
-    /// Counters: tiltmeter, thermometer, heater, heater readback.
+    /// Counters: tiltmeter, thermometer, heater, heater readback, then one per thermometer
+    /// unit when the line holds several ([`FIRST_UNIT_CHANNEL`]).
     pub channels: Vec<ChannelStatus>,
     /// Tilt samples not yet taken by `poll`: raw values.
     pub tilt: VecDeque<Stamped<[f64; 2]>>,
@@ -112,7 +126,8 @@ pub struct Store {
     pub tilt_capacity: usize,
     /// Samples dropped because nobody polled.
     pub tilt_dropped: u64,
-    /// Per thermometer channel (0-based, the RTD map's 8 channels).
+    /// Per thermometer channel: slot `k · 8 + channel` for the line's `k`-th unit (in
+    /// `instruments.thermometer.units` order; the RTD map's 8 channels each).
     pub temps: Vec<TempSlot>,
     /// Power read back per leg, W.
     pub readback_w: Vec<Option<Stamped<f64>>>,
@@ -234,12 +249,9 @@ impl Openers {
             Box::new(SerialOpener {
                 resolve: Box::new(resolve),
                 baud: link.baud,
-                // Modbus RTU's default character format is 8E1 (Modbus over Serial Line §2.5.1).
-                parity: if name == "thermometer" {
-                    tokio_serial::Parity::Even
-                } else {
-                    tokio_serial::Parity::None
-                },
+                // As configured; the thermometer's default is Modbus RTU's 8E1 (Modbus over
+                // Serial Line §2.5.1), the others' 8N1 (stilt-config).
+                framing: link.framing,
                 last: link.port.clone(),
             })
         };
@@ -268,7 +280,27 @@ pub struct SerialBackend {
 
 #[derive(Debug, Clone)]
 struct LegMap {
-    thermometer_channel: usize,
+    /// Index into [`Store::temps`].
+    thermometer_slot: usize,
+}
+
+/// Each leg's slot in [`Store::temps`]: `k · 8 + channel`, `k` its unit's place in
+/// `instruments.thermometer.units`.
+pub fn thermo_slots(cfg: &Config) -> Vec<usize> {
+    let th = cfg.instruments.as_ref().map(|i| &i.thermometer);
+    cfg.legs
+        .iter()
+        .enumerate()
+        .map(|(i, l)| {
+            let k = th
+                .and_then(|t| {
+                    let u = t.leg_units.get(i)?;
+                    t.units.iter().position(|x| x == u)
+                })
+                .unwrap_or(0);
+            k * CHANNELS_PER_UNIT + l.thermometer_channel
+        })
+        .collect()
 }
 
 impl SerialBackend {
@@ -297,9 +329,15 @@ impl SerialBackend {
                 ch("heater", &openers.heater.name()),
                 ch("heater_readback", &openers.heater.name()),
             ];
+            if inst.thermometer.units.len() > 1 {
+                for u in &inst.thermometer.units {
+                    s.channels
+                        .push(ch(&unit_channel_name(*u), &openers.thermometer.name()));
+                }
+            }
             s.origin = Some(origin);
             s.tilt_capacity = (per_tick * 8).max(64);
-            s.temps = vec![TempSlot::default(); 8];
+            s.temps = vec![TempSlot::default(); CHANNELS_PER_UNIT * inst.thermometer.units.len()];
             s.readback_w = vec![None; cfg.legs.len()];
             s.mismatch = vec![false; cfg.legs.len()];
         });
@@ -318,12 +356,12 @@ impl SerialBackend {
             )
             .instrument(tracing::info_span!("tiltmeter")),
         ));
-        let channels: Vec<usize> = cfg.legs.iter().map(|l| l.thermometer_channel).collect();
+        let slots = thermo_slots(cfg);
         tasks.push(tokio::spawn(
             thermo::run(
                 line(openers.thermometer, THERMOMETER),
                 inst.thermometer.clone(),
-                channels,
+                slots.clone(),
                 shared.clone(),
                 origin,
             )
@@ -345,11 +383,10 @@ impl SerialBackend {
             shared,
             origin,
             cmd,
-            legs: cfg
-                .legs
+            legs: slots
                 .iter()
-                .map(|l| LegMap {
-                    thermometer_channel: l.thermometer_channel,
+                .map(|&slot| LegMap {
+                    thermometer_slot: slot,
                 })
                 .collect(),
             stale_after_s: inst.thermometer.stale_after_s,
@@ -379,11 +416,7 @@ impl SerialBackend {
             let mut leg_temps = Vec::with_capacity(self.legs.len());
             let mut ages = Vec::with_capacity(self.legs.len());
             for l in &self.legs {
-                let slot = s
-                    .temps
-                    .get(l.thermometer_channel)
-                    .copied()
-                    .unwrap_or_default();
+                let slot = s.temps.get(l.thermometer_slot).copied().unwrap_or_default();
                 let (v, q, age) = leg_temp(&slot, t_acq, stale);
                 leg_temps.push((v, q));
                 ages.push(age);
@@ -397,13 +430,7 @@ impl SerialBackend {
                     .iter()
                     .map(|r| r.filter(|r| t_acq - r.t_acq_s <= stale).map(|r| r.value))
                     .collect(),
-                channels: {
-                    let mut c = s.channels.clone();
-                    if let [.., h, rb] = c.as_mut_slice() {
-                        rb.connected = h.connected;
-                    }
-                    c
-                },
+                channels: with_derived(&s.channels),
             }
         })
     }
@@ -456,6 +483,25 @@ impl Drop for SerialBackend {
             t.abort();
         }
     }
+}
+
+/// The channels with the derived ones (heater readback, thermometer units) sharing their
+/// line's connection state, port and reconnects.
+fn with_derived(channels: &[ChannelStatus]) -> Vec<ChannelStatus> {
+    let mut c = channels.to_vec();
+    if let Some(h) = c.get(HEATER).map(|h| h.connected)
+        && let Some(rb) = c.get_mut(HEATER_READBACK)
+    {
+        rb.connected = h;
+    }
+    if let Some(th) = c.get(THERMOMETER).cloned() {
+        for u in c.iter_mut().skip(FIRST_UNIT_CHANNEL) {
+            u.connected = th.connected;
+            u.port.clone_from(&th.port);
+            u.reconnects = th.reconnects;
+        }
+    }
+    c
 }
 
 /// One leg's reported value by the rules in the module docs: (°C, quality, age of the last
@@ -513,7 +559,7 @@ impl AcqHandle {
 
     /// Counters now.
     pub fn channels(&self) -> Vec<ChannelStatus> {
-        self.shared.with(|s| s.channels.clone())
+        self.shared.with(|s| with_derived(&s.channels))
     }
 
     /// Fault events raised so far (port lost, readback mismatch …).

@@ -78,6 +78,12 @@ struct Behaviour {
     open_heater: bool,
     volts: [f64; 3],
     requests: u64,
+    /// Units the fake thermometer answers as (empty: any).
+    units: Vec<u8>,
+    /// A unit that stays silent (the others answer).
+    silent_unit: Option<u8>,
+    /// What unit 2 reads on its channels, Ω.
+    ohms_unit2: [f64; 3],
 }
 
 type B = Arc<Mutex<Behaviour>>;
@@ -125,7 +131,7 @@ async fn tilt_device(mut m: SerialStream, beh: B) {
     }
 }
 
-struct Bank(Behaviour);
+struct Bank(Behaviour, u8);
 
 impl RegisterBank for Bank {
     fn read_holding(&self, _: u16) -> Result<u16, ExceptionCode> {
@@ -134,7 +140,12 @@ impl RegisterBank for Bank {
     fn read_input(&self, a: u16) -> Result<u16, ExceptionCode> {
         if a < rtd::STATUS_BASE {
             let ch = usize::from(a / 2);
-            let ohms = self.0.ohms.get(ch).copied().unwrap_or(100.0);
+            let table = if self.1 == 2 {
+                &self.0.ohms_unit2
+            } else {
+                &self.0.ohms
+            };
+            let ohms = table.get(ch).copied().unwrap_or(100.0);
             let w = rtd::encode_resistance(ohms).map_err(|_| ExceptionCode::ServerDeviceFailure)?;
             Ok(w[usize::from(a % 2)])
         } else if a < rtd::STATUS_BASE + 8 {
@@ -167,10 +178,12 @@ async fn thermo_device(mut m: SerialStream, beh: B) {
                 g.requests += 1;
                 g.clone()
             };
-            if bh.silent {
+            // A server answers only its own address (Modbus over Serial Line §2.2).
+            let ours = bh.units.is_empty() || bh.units.contains(&frame.unit);
+            if bh.silent || !ours || bh.silent_unit == Some(frame.unit) {
                 continue;
             }
-            let resp = modbus::serve(&frame.request, &mut Bank(bh.clone()));
+            let resp = modbus::serve(&frame.request, &mut Bank(bh.clone(), frame.unit));
             let mut out = Vec::new();
             modbus::encode_response(frame.unit, &resp, &mut out).unwrap();
             if bh.garble {
@@ -257,12 +270,19 @@ fn plug(k: usize, tx: &std::sync::mpsc::Sender<SerialStream>, beh: &B) {
 }
 
 fn rig() -> Rig {
-    let cfg = config();
+    rig_with(config(), Vec::new())
+}
+
+/// [`rig`] on `cfg`, the fake thermometer answering as `units` (empty: any).
+fn rig_with(cfg: Config, units: Vec<u8>) -> Rig {
     let beh: B = Arc::new(Mutex::new(Behaviour {
         tilt_raw: [123.4567, -45.6789],
         // IEC 60751:2008 table values for Pt100 (from memory): 0 °C → 100.000 Ω,
         // 25 °C → 109.735 Ω, 100 °C → 138.506 Ω.
         ohms: [100.0, 109.735, 138.5055],
+        // IEC 60751 (from memory): 50 °C → 119.397 Ω.
+        ohms_unit2: [119.397, 100.0, 100.0],
+        units,
         ..Behaviour::default()
     }));
     let mk = |name: &str| {
@@ -546,6 +566,121 @@ async fn leg_temperatures_follow_iec_60751_and_go_stale_then_timeout() {
     })
     .await;
     assert!(rd.leg_temps.iter().all(|t| t.1 == Quality::Ok), "{rd:?}");
+}
+
+/// [`config`] with leg C moved to channel 0 of unit 2 (a two-unit bus).
+fn bus_config() -> Config {
+    let text = format!(
+        "{}\n{}",
+        stilt_config::DEMO_SCENARIO.replace(
+            "thermometer_channel = 2\n",
+            "thermometer_channel = 0\nthermometer_unit = 2\n"
+        ),
+        r#"
+[instruments.tiltmeter]
+port = "fake-tilt"
+poll_hz = 20.0
+timeout_ms = 60
+retries = 0
+
+[instruments.thermometer]
+port = "fake-thermo"
+units = [1, 2]
+poll_hz = 10.0
+timeout_ms = 60
+retries = 0
+stale_after_s = 0.4
+
+[instruments.heater]
+port = "fake-heater"
+timeout_ms = 60
+retries = 0
+readback_tolerance_w = 0.05
+"#
+    );
+    stilt_config::load_str(&text, "test").unwrap()
+}
+
+fn named<'a>(rd: &'a AcqReadings, name: &str) -> &'a ChannelStatus {
+    rd.channels
+        .iter()
+        .find(|c| c.name == name)
+        .unwrap_or_else(|| panic!("no channel {name}: {:?}", rd.channels))
+}
+
+#[tokio::test]
+async fn a_silent_unit_on_a_bus_marks_only_its_legs_and_counters() {
+    let cfg = bus_config();
+    assert_eq!(thermo_slots(&cfg), vec![0, 1, CHANNELS_PER_UNIT]);
+    let mut r = rig_with(cfg, vec![1, 2]);
+    let (_, rd) = poll_until(&mut r.backend, Duration::from_secs(3), |rd, _| {
+        rd.leg_temps.iter().all(|t| t.1 == Quality::Ok)
+    })
+    .await;
+    // IEC 60751 table (from memory): 109.735 Ω ↔ 25.00 °C; 119.397 Ω ↔ 50.00 °C.
+    assert!((rd.leg_temps[1].0 - 25.0).abs() < 0.005, "{rd:?}");
+    assert!((rd.leg_temps[2].0 - 50.0).abs() < 0.005, "{rd:?}");
+    assert!(named(&rd, "thermometer@1").requests >= 2);
+    assert!(named(&rd, "thermometer@2").requests >= 2);
+    assert!(named(&rd, "thermometer@2").connected);
+    // The line's channel keeps the totals.
+    let total = named(&rd, "thermometer").requests;
+    assert!(
+        total >= named(&rd, "thermometer@1").requests + named(&rd, "thermometer@2").requests - 2
+    );
+
+    // Unit 2 goes silent: leg C times out; legs A and B (unit 1) stay ok.
+    b(&r.beh).silent_unit = Some(2);
+    let (_, rd) = poll_until(&mut r.backend, Duration::from_secs(3), |rd, _| {
+        rd.leg_temps[2].1 == Quality::Timeout
+    })
+    .await;
+    assert_eq!(rd.leg_temps[2].1, Quality::Timeout, "{rd:?}");
+    assert_eq!(rd.leg_temps[0].1, Quality::Ok, "{rd:?}");
+    assert_eq!(rd.leg_temps[1].1, Quality::Ok, "{rd:?}");
+    assert!(rd.leg_temp_age_s[0].is_some_and(|a| a < 0.4), "{rd:?}");
+    assert!(named(&rd, "thermometer@2").timeouts >= 1);
+    assert_eq!(named(&rd, "thermometer@1").timeouts, 0);
+    // Unit 1's replies keep the line open: a silent unit is not a dead line.
+    assert!(named(&rd, "thermometer").connected);
+    assert_eq!(named(&rd, "thermometer").reconnects, 0);
+
+    b(&r.beh).silent_unit = None;
+    let (_, rd) = poll_until(&mut r.backend, Duration::from_secs(3), |rd, _| {
+        rd.leg_temps.iter().all(|t| t.1 == Quality::Ok)
+    })
+    .await;
+    assert!(rd.leg_temps.iter().all(|t| t.1 == Quality::Ok), "{rd:?}");
+}
+
+#[test]
+fn serial_settings_follow_the_configured_framing() {
+    use stilt_protocol::modbus::timing::{CharFormat, Parity};
+    let f = |data_bits, parity, stop_bits| CharFormat {
+        data_bits,
+        parity,
+        stop_bits,
+    };
+    assert_eq!(
+        link::serial_settings(CharFormat::RTU_DEFAULT),
+        (
+            tokio_serial::DataBits::Eight,
+            tokio_serial::Parity::Even,
+            tokio_serial::StopBits::One
+        )
+    );
+    assert_eq!(
+        link::serial_settings(f(7, Parity::Odd, 2)),
+        (
+            tokio_serial::DataBits::Seven,
+            tokio_serial::Parity::Odd,
+            tokio_serial::StopBits::Two
+        )
+    );
+    assert_eq!(
+        link::serial_settings(f(8, Parity::None, 2)).1,
+        tokio_serial::Parity::None
+    );
 }
 
 #[tokio::test]

@@ -1,4 +1,7 @@
-//! `stiltd check --config FILE`: validate a configuration and summarise the stage.
+//! `stiltd check --config FILE`: validate a configuration and summarise the stage, and,
+//! when it has `[instruments]`, each serial line (port and whether the port map gave it,
+//! baud, character format, poll rate, timeout, retries) and the thermometer bus's units with
+//! the legs and channels each reads.
 
 use std::path::PathBuf;
 use std::process::ExitCode;
@@ -93,5 +96,78 @@ pub fn summary(cfg: &Config) -> String {
         r.segment_max_mib
     );
     let _ = writeln!(o, "network: {}", cfg.network.bind);
+    if let Some(i) = &cfg.instruments {
+        instruments(&mut o, cfg, i);
+    }
     o
+}
+
+/// The `instruments:` part of the summary: each line's port (and where it came from), baud,
+/// character format, poll rate, timeout and retries; the thermometer's units and legs.
+fn instruments(o: &mut String, cfg: &Config, i: &stilt_config::Instruments) {
+    use std::fmt::Write;
+    match &i.port_map {
+        Some(m) => {
+            let _ = writeln!(o, "instruments (port map {}):", m.display());
+        }
+        None => {
+            let _ = writeln!(o, "instruments:");
+        }
+    }
+    let line = |o: &mut String, name: &str, l: &stilt_config::SerialLink, poll: Option<f64>| {
+        let retries = match l.retries {
+            1 => "1 retry".to_string(),
+            n => format!("{n} retries"),
+        };
+        let _ = writeln!(
+            o,
+            "  {name:<12} {}{}, {} baud {}, {}timeout {} ms, {retries}",
+            l.port,
+            if l.port_from_map {
+                " (from the port map)"
+            } else {
+                ""
+            },
+            l.baud,
+            l.framing,
+            poll.map_or(String::new(), |p| format!("poll {p} Hz, ")),
+            l.timeout_ms,
+        );
+    };
+    line(o, "tiltmeter", &i.tiltmeter.link, Some(i.tiltmeter.poll_hz));
+    let th = &i.thermometer;
+    line(o, "thermometer", &th.link, Some(th.poll_hz));
+    let _ = writeln!(
+        o,
+        "    Modbus RTU, {} sensors, stale after {} s, {} unit(s):",
+        th.sensor.as_str(),
+        th.stale_after_s,
+        th.units.len()
+    );
+    for u in &th.units {
+        let legs: Vec<String> = cfg
+            .legs
+            .iter()
+            .zip(&th.leg_units)
+            .filter(|(_, lu)| *lu == u)
+            .map(|(l, _)| format!("{} ch {}", l.name, l.thermometer_channel))
+            .collect();
+        let _ = writeln!(
+            o,
+            "    unit {u}{}: {}",
+            if *u == th.unit { " (default)" } else { "" },
+            legs.join(", ")
+        );
+    }
+    line(o, "heater", &i.heater.link, None);
+    let _ = writeln!(
+        o,
+        "    set every control tick ({} Hz), readback {}",
+        cfg.control.rate_hz,
+        if i.heater.readback {
+            format!("on, tolerance {} W", i.heater.readback_tolerance_w)
+        } else {
+            "off".into()
+        }
+    );
 }

@@ -52,7 +52,8 @@ struct Args {
     /// Stop after this many wall-clock seconds.
     #[arg(long, value_name = "SECONDS")]
     duration: Option<f64>,
-    /// The thermometer's Modbus unit address (1 to 247).
+    /// The thermometer's Modbus unit address (1 to 247) for a stage without
+    /// `[instruments]` (a stage with them brings its own units, e.g. a bus of several).
     #[arg(long, value_name = "N", default_value_t = DEFAULT_THERMOMETER_UNIT)]
     thermometer_unit: u8,
 }
@@ -133,11 +134,6 @@ async fn run(args: Args) -> Result<()> {
         )
         .init();
     check_args(&args)?;
-    let cfg = match &args.config {
-        Some(p) => stilt_config::load_file(p).map_err(|e| anyhow::anyhow!("{e}"))?,
-        None => stilt_config::load_str(stilt_config::DEMO_SCENARIO, "built-in demo")
-            .map_err(|e| anyhow::anyhow!("{e}"))?,
-    };
     let faults = match &args.faults {
         Some(p) => {
             let text = std::fs::read_to_string(p)
@@ -146,8 +142,6 @@ async fn run(args: Args) -> Result<()> {
         }
         None => FaultSchedule::default(),
     };
-    let rig: Shared = Arc::new(Mutex::new(Rig::new(&cfg, faults, args.thermometer_unit)?));
-
     let mut masters = Vec::new();
     let mut paths = Vec::new();
     for d in DeviceKind::ALL {
@@ -161,7 +155,7 @@ async fn run(args: Args) -> Result<()> {
         masters.push(master);
         paths.push(path);
     }
-    let map = PortMap {
+    let mut map = PortMap {
         tiltmeter: paths[0].clone(),
         thermometer: paths[1].clone(),
         heater: paths[2].clone(),
@@ -172,11 +166,40 @@ async fn run(args: Args) -> Result<()> {
     };
     map.write_atomic(&args.port_map)
         .with_context(|| format!("cannot write the port map {}", args.port_map.display()))?;
+    // The stage is read with the map just written, so a stage with [instruments] resolves
+    // exactly as the daemon will: its thermometer units are the ones the bus emulates.
+    let loaded = match &args.config {
+        Some(p) => stilt_config::load_file_with(p, Some(&args.port_map)),
+        None => stilt_config::load_str(stilt_config::DEMO_SCENARIO, "built-in demo"),
+    }
+    .map_err(|e| anyhow::anyhow!("{e}"))
+    .and_then(|cfg| {
+        let rig = Rig::new(&cfg, faults, args.thermometer_unit)?;
+        Ok((cfg, rig))
+    });
+    let (cfg, rig) = match loaded {
+        Ok(x) => x,
+        Err(e) => {
+            // No daemon may follow a map whose ptys are about to close.
+            let _ = std::fs::remove_file(&args.port_map);
+            return Err(e);
+        }
+    };
+    let units = rig.thermometer_units();
+    if let Some(i) = &cfg.instruments
+        && i.thermometer.unit != map.thermometer_unit
+    {
+        map.thermometer_unit = i.thermometer.unit;
+        map.write_atomic(&args.port_map)
+            .with_context(|| format!("cannot write the port map {}", args.port_map.display()))?;
+    }
+    let rig: Shared = Arc::new(Mutex::new(rig));
     if let Some(p) = &args.state {
         write_state(&rig, p);
     }
     tracing::info!(
         tiltmeter = %map.tiltmeter, thermometer = %map.thermometer, heater = %map.heater,
+        thermometer_units = ?units,
         speed = args.speed, port_map = %args.port_map.display(), "ptys open"
     );
     {

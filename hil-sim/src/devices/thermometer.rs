@@ -168,6 +168,11 @@ impl Thermometer {
         }
     }
 
+    /// The Modbus address this unit answers to.
+    pub fn unit(&self) -> u8 {
+        self.unit
+    }
+
     /// Simulated seconds between scans at the current averaging.
     pub fn scan_period_s(&self) -> f64 {
         CONVERSION_S * f64::from(self.image.averaging.max(1))

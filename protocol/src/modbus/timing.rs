@@ -42,11 +42,43 @@ impl CharFormat {
         stop_bits: 1,
     };
 
+    /// 8 data bits, no parity, 1 stop bit: the usual format of ASCII instruments (common
+    /// practice).
+    pub const EIGHT_N_1: CharFormat = CharFormat {
+        data_bits: 8,
+        parity: Parity::None,
+        stop_bits: 1,
+    };
+
     /// Bits per character including the start bit.
     pub fn bits(&self) -> u32 {
         1 + u32::from(self.data_bits)
             + u32::from(self.parity != Parity::None)
             + u32::from(self.stop_bits)
+    }
+}
+
+impl Parity {
+    /// The letter of the usual short notation (`N`, `E`, `O`).
+    pub fn letter(self) -> char {
+        match self {
+            Parity::None => 'N',
+            Parity::Even => 'E',
+            Parity::Odd => 'O',
+        }
+    }
+}
+
+impl std::fmt::Display for CharFormat {
+    /// The usual short notation: data bits, parity letter, stop bits (`8E1`).
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "{}{}{}",
+            self.data_bits,
+            self.parity.letter(),
+            self.stop_bits
+        )
     }
 }
 
@@ -303,6 +335,36 @@ mod tests {
         assert_eq!(silences(9600, f).unwrap().inter_frame.as_nanos(), 3_645_833);
         assert_eq!(silences(0, f), Err(TimingError::ZeroBaud));
         assert!(silences(9600, CharFormat { data_bits: 9, ..f }).is_err());
+    }
+
+    #[test]
+    fn every_eleven_bit_rtu_format_has_the_same_silences() {
+        // Serial line spec §2.5.1 (from memory): an RTU character is 11 bits, as 8E1, 8O1 or
+        // 8N2 (no parity takes a second stop bit), so all three give the same t1.5 and t3.5:
+        // at 9600 baud t3.5 = 3.5 · 11 / 9600 s = 4010.4 µs (arithmetic on §2.5.1.1).
+        let f = |parity, stop_bits| CharFormat {
+            data_bits: 8,
+            parity,
+            stop_bits,
+        };
+        for c in [f(Parity::Even, 1), f(Parity::Odd, 1), f(Parity::None, 2)] {
+            assert_eq!(c.bits(), 11, "{c}");
+            let s = silences(9600, c).unwrap();
+            assert_eq!(s.inter_frame.as_nanos(), 4_010_416, "{c}");
+            assert_eq!(s.inter_char.as_nanos(), 1_718_750, "{c}");
+        }
+        // 7E2 is 11 bits too; 7N1 is 9: t3.5 at 9600 = 3.5 · 9 / 9600 s = 3281.25 µs.
+        let seven = CharFormat {
+            data_bits: 7,
+            ..CharFormat::EIGHT_N_1
+        };
+        assert_eq!(
+            silences(9600, seven).unwrap().inter_frame.as_nanos(),
+            3_281_250
+        );
+        assert_eq!(CharFormat::RTU_DEFAULT.to_string(), "8E1");
+        assert_eq!(f(Parity::None, 2).to_string(), "8N2");
+        assert_eq!(seven.to_string(), "7N1");
     }
 
     fn asm(strict: bool) -> FrameAssembler {
