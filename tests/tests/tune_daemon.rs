@@ -227,6 +227,59 @@ fn tune_through_the_daemon_fits_the_stage_physics_applies_and_restores() {
     let before = get_json(&addr, "/v1/config");
     assert_eq!(before["control"]["manual_power_w"], 1.0);
 
+    // SIGTERM during the test: it stops, puts the previous state back and says so.
+    let victim = command("stiltd", &dir)
+        .args([
+            "tune",
+            "--daemon",
+            &url,
+            "--loop",
+            "leg:A",
+            "--step",
+            "0.5",
+            "--settle",
+            "60",
+            "--baseline",
+            "10",
+            "--record",
+            "30",
+        ])
+        .stdin(Stdio::null())
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let t_sig = Instant::now();
+    loop {
+        if get_json(&addr, "/v1/status")["mode"] == "manual" {
+            break;
+        }
+        assert!(
+            t_sig.elapsed() < Duration::from_secs(10),
+            "the test never switched to manual"
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    assert!(
+        Command::new("kill")
+            .args(["-TERM", &victim.id().to_string()])
+            .status()
+            .unwrap()
+            .success()
+    );
+    let v = victim.wait_with_output().unwrap();
+    let verr = String::from_utf8_lossy(&v.stderr);
+    assert_eq!(v.status.code(), Some(1), "{verr}");
+    assert!(
+        verr.contains("stopped by a signal") && verr.contains("previous state was restored"),
+        "{verr}"
+    );
+    assert_eq!(get_json(&addr, "/v1/status")["mode"], "off");
+    assert_eq!(
+        get_json(&addr, "/v1/config")["control"]["manual_power_w"],
+        1.0
+    );
+
     // The test: 0 W → 0.5 W on every heater, 4 s of baseline and 30 s of record in the
     // daemon's time (800 s and 6000 s of the stage's, about 4.6 slow time constants).
     let tune = command("stiltd", &dir)

@@ -252,6 +252,13 @@ fn run_daemon(a: &TuneArgs) -> ExitCode {
         eprintln!("stiltd tune: {m}");
         ExitCode::from(2)
     };
+    if a.target.starts_with("tilt:") {
+        // Refused before connecting: the reason does not depend on the daemon.
+        return usage(format!(
+            "--loop: {}",
+            parse_leg(&a.target, &[]).unwrap_err()
+        ));
+    }
     if a.relay {
         return usage(
             "--relay is not available with --daemon yet: the relay test runs on the simulated stage only".into(),
@@ -417,4 +424,25 @@ pub(crate) fn progress_bar(what: &str) -> Option<indicatif::ProgressBar> {
         b.set_style(style.progress_chars("=> "));
     }
     Some(b)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::parse_leg;
+
+    #[test]
+    fn legs_parse_by_name_or_number_and_tilt_is_refused_with_its_reason() {
+        let names = ["A", "B", "C"];
+        assert_eq!(parse_leg("leg:B", &names), Ok(1));
+        assert_eq!(parse_leg("leg:3", &names), Ok(2));
+        for bad in ["leg:4", "leg:0", "leg:Z", "legs", ""] {
+            let e = parse_leg(bad, &names).unwrap_err();
+            assert!(e.contains("A, B, C") && e.contains("N = 1…3"), "{bad}: {e}");
+        }
+        let e = parse_leg("tilt:x", &names).unwrap_err();
+        assert!(
+            e.contains("per-leg setpoint offsets") && e.contains("without --daemon"),
+            "{e}"
+        );
+    }
 }
