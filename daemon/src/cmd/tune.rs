@@ -46,7 +46,8 @@ pub struct TuneArgs {
     #[arg(long, default_value = "3h", value_parser = crate::demo::parse_duration_s)]
     pub warmup: f64,
     /// With --daemon: hold the heaters at their present power this long before the
-    /// baseline (daemon time).
+    /// baseline (daemon time). Give the stage time to become steady: the baseline's
+    /// straight line is removed as drift, and a leg still warming biases the fit.
     #[arg(long, default_value = "10m", value_parser = crate::demo::parse_duration_s)]
     pub settle: f64,
     /// With --daemon: at most one progress line on stderr this often, seconds.
@@ -66,7 +67,9 @@ pub struct TuneArgs {
     /// Record after the step; default 3h for a leg, 30m for a tilt axis.
     #[arg(long, value_parser = crate::demo::parse_duration_s)]
     pub record: Option<f64>,
-    /// Also run an Åström–Hägglund relay test (bounded amplitude) for Ku and Pu.
+    /// Also run an Åström–Hägglund relay test (bounded amplitude) for Ku and Pu; with
+    /// --daemon after the step test, switching the manual power between p0 ± amplitude
+    /// (so the heaters must be held above the amplitude), at most 6 h.
     #[arg(long)]
     pub relay: bool,
     /// Relay amplitude (input unit); default: the step size.
@@ -259,11 +262,6 @@ fn run_daemon(a: &TuneArgs) -> ExitCode {
             parse_leg(&a.target, &[]).unwrap_err()
         ));
     }
-    if a.relay {
-        return usage(
-            "--relay is not available with --daemon yet: the relay test runs on the simulated stage only".into(),
-        );
-    }
     if !(a.progress_every.is_finite() && a.progress_every > 0.0 && a.progress_every <= 3600.0) {
         return usage(format!(
             "--progress-every {}: give 0 to 3600 seconds",
@@ -325,7 +323,29 @@ fn run_daemon(a: &TuneArgs) -> ExitCode {
     for r in &run.restored {
         eprintln!("tune: restored {r}");
     }
-    let result = match tune::analyse_with(&run.context, &run.record, None) {
+    let relay = if a.relay {
+        let ro = RelayOptions {
+            amplitude: a.relay_amplitude.or(a.step),
+            hysteresis: a.relay_hysteresis,
+            ..RelayOptions::default()
+        };
+        match remote::run_remote_relay_test(&client, &opts, &ro, &cancel, &mut |l| eprintln!("{l}"))
+        {
+            Ok(r) => {
+                for x in &r.restored {
+                    eprintln!("tune: restored {x}");
+                }
+                Some(r.record)
+            }
+            Err(e) => {
+                eprintln!("stiltd tune: relay test: {e}");
+                return ExitCode::FAILURE;
+            }
+        }
+    } else {
+        None
+    };
+    let result = match tune::analyse_with(&run.context, &run.record, relay.as_ref()) {
         Ok(r) => r,
         Err(e) => {
             eprintln!("stiltd tune: {e}");

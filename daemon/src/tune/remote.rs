@@ -7,6 +7,8 @@
 //! - [`RemoteOptions`] → [`run_remote_step_test`] → [`RemoteRun`] (a [`StepRecord`] and the
 //!   [`AnalysisContext`] for [`super::analyse_with`]), or a [`RemoteError`] that says what
 //!   went wrong and whether the daemon's previous state was restored;
+//! - [`run_remote_relay_test`] → [`RemoteRelayRun`]: the Åström–Hägglund relay test the
+//!   same way (the manual power switched between p0 ± d);
 //! - [`SavedState`] and [`restore`]: the mode, manual power and setpoints read before the
 //!   test, put back at its end whatever happened;
 //! - [`confirm`] (the `[y/N]` question, refused without a terminal unless `--yes`) and
@@ -33,8 +35,8 @@ use std::time::{Duration, Instant};
 use stilt_config::LoopGains;
 
 use super::{
-    AnalysisContext, NamedGains, StepOptions, StepRecord, Target, check_durations_min,
-    clean_record, leg_step_limits,
+    AnalysisContext, NamedGains, RelayOptions, RelayRecord, StepOptions, StepRecord, Target,
+    check_durations_min, clean_record, leg_step_limits,
 };
 use crate::api::client::{Client, ClientError, EventReader};
 use crate::api::wire::{
@@ -495,13 +497,207 @@ pub fn run_remote_step_test(
     cancel: &AtomicBool,
     log: &mut dyn FnMut(&str),
 ) -> Result<RemoteRun, RemoteError> {
+    let (record, context, restored) = session(api, opts, None, cancel, log, &mut |w, log| {
+        drive(w, opts, log)
+    })?;
+    Ok(RemoteRun {
+        record,
+        context,
+        restored,
+    })
+}
+
+/// A finished remote relay test.
+#[derive(Debug, Clone)]
+pub struct RemoteRelayRun {
+    /// The record, on the daemon's clock.
+    pub record: RelayRecord,
+    /// What the daemon answered while its state was restored.
+    pub restored: Vec<String>,
+}
+
+/// Runs an Åström–Hägglund relay test through the daemon: the same hold and settle as
+/// the step test, the operating point as the mean over the baseline, then the manual
+/// power of every heater switched between p0 ± d on the recorded leg's error with
+/// hysteresis ε, until the asked cycles (plus three) or `relay.max_s`; always restores.
+/// The amplitude must fit both ways: p0 − d ≥ 0 and p0 + d inside every limit.
+pub fn run_remote_relay_test(
+    api: &dyn DaemonApi,
+    opts: &RemoteOptions,
+    relay: &RelayOptions,
+    cancel: &AtomicBool,
+    log: &mut dyn FnMut(&str),
+) -> Result<RemoteRelayRun, RemoteError> {
+    let eps = relay.hysteresis.unwrap_or(0.003);
+    if !(eps.is_finite() && eps >= 0.0) {
+        return Err(RemoteError::Refused(format!(
+            "a hysteresis of {eps} K is not allowed: give a finite value ≥ 0"
+        )));
+    }
+    if !(relay.max_s.is_finite() && relay.max_s > 0.0 && relay.max_s <= 30.0 * 86_400.0) {
+        return Err(RemoteError::Refused(format!(
+            "a relay time of {} s is not allowed: give up to 30 days",
+            relay.max_s
+        )));
+    }
+    let amp = relay.amplitude.or(opts.step);
+    let (record, _, restored) = session(api, opts, Some(amp), cancel, log, &mut |w, log| {
+        drive_relay(w, opts, relay, eps, log)
+    })?;
+    Ok(RemoteRelayRun { record, restored })
+}
+
+/// What a test driver works with: the plan and a checked source of samples.
+struct Watch<'a> {
+    api: &'a dyn DaemonApi,
+    plan: Plan,
+    rx: mpsc::Receiver<Result<SampleWire, String>>,
+    cancel: &'a AtomicBool,
+    opts: &'a RemoteOptions,
+    last_sample: Instant,
+    last_status: Instant,
+    /// Set once the daemon was seen in manual mode: leaving it then stops the test.
+    manual_seen: bool,
+}
+
+impl Watch<'_> {
+    /// The next sample, after every check: a signal, the alarms (read every
+    /// `status_every`), a stalled or closed stream, the mode, and the leg temperature limit.
+    fn next(&mut self) -> Result<SampleWire, String> {
+        loop {
+            if self.cancel.load(Ordering::SeqCst) {
+                return Err("stopped by a signal (Ctrl-C or SIGTERM)".into());
+            }
+            if self.last_status.elapsed() >= self.opts.status_every {
+                self.last_status = Instant::now();
+                let st = self
+                    .api
+                    .status()
+                    .map_err(|e| format!("cannot read the daemon's status: {e}"))?;
+                if let Some(a) = st
+                    .alarms
+                    .iter()
+                    .find(|a| a.active || !self.plan.alarms_before.contains(&a.id))
+                {
+                    return Err(format!("alarm {} during the test: {}", a.id, a.message));
+                }
+            }
+            let s = match self.rx.recv_timeout(Duration::from_millis(100)) {
+                Ok(Ok(s)) => s,
+                Ok(Err(e)) => return Err(e),
+                Err(mpsc::RecvTimeoutError::Timeout) => {
+                    if self.last_sample.elapsed() >= self.opts.stall_after {
+                        return Err(format!(
+                            "no sample from the daemon for {:.0} s: the connection was lost or its loop stopped",
+                            self.opts.stall_after.as_secs_f64()
+                        ));
+                    }
+                    continue;
+                }
+                Err(mpsc::RecvTimeoutError::Disconnected) => {
+                    return Err("the stream reader stopped (connection lost)".into());
+                }
+            };
+            self.last_sample = Instant::now();
+            if s.legs.len() <= self.opts.leg {
+                return Err(format!(
+                    "a sample carries {} legs, not the leg {} under test",
+                    s.legs.len(),
+                    self.opts.leg + 1
+                ));
+            }
+            if self.manual_seen && s.mode != "manual" {
+                return Err(format!(
+                    "the daemon left manual mode (now {}): an interlock or another client changed it",
+                    s.mode
+                ));
+            }
+            let t_limit = self.plan.max_leg_temp_c - LEG_TEMP_MARGIN_K;
+            if let Some((k, t)) = s
+                .legs
+                .iter()
+                .enumerate()
+                .filter_map(|(k, l)| l.temp_c.map(|t| (k, t)))
+                .find(|(_, t)| *t > t_limit)
+            {
+                return Err(format!(
+                    "leg {} reached {t:.3} °C, within {LEG_TEMP_MARGIN_K} K of limits.max_leg_temp_c = {} °C: test stopped; use a smaller step",
+                    k + 1,
+                    self.plan.max_leg_temp_c
+                ));
+            }
+            return Ok(s);
+        }
+    }
+
+    /// Puts the daemon into manual mode at p0 and returns the daemon time of the first
+    /// row that shows it.
+    fn hold(&mut self, log: &mut dyn FnMut(&str)) -> Result<f64, String> {
+        let p0 = self.plan.p0;
+        self.api
+            .set_manual_power(p0)
+            .map_err(|e| format!("setting the manual power to {p0} W failed: {e}"))?;
+        self.api
+            .set_mode("manual")
+            .map_err(|e| format!("switching the daemon to manual mode failed: {e}"))?;
+        loop {
+            let s = self.next()?;
+            if s.mode == "manual" && (s.legs[self.opts.leg].power_w - p0).abs() < 1e-6 {
+                self.manual_seen = true;
+                log(&format!(
+                    "tune: manual mode at {p0:.4} W from daemon time {:.1} s; settling {} s",
+                    s.t_s, self.opts.settle_s
+                ));
+                return Ok(s.t_s);
+            }
+        }
+    }
+}
+
+/// Reads the state, plans, opens the stream, runs `body`, and always restores.
+/// `relay_amplitude`: `Some` for a relay test (the amplitude must fit both ways).
+#[allow(clippy::type_complexity)]
+fn session<T>(
+    api: &dyn DaemonApi,
+    opts: &RemoteOptions,
+    relay_amplitude: Option<Option<f64>>,
+    cancel: &AtomicBool,
+    log: &mut dyn FnMut(&str),
+    body: &mut dyn FnMut(&mut Watch<'_>, &mut dyn FnMut(&str)) -> Result<T, String>,
+) -> Result<(T, AnalysisContext, Vec<String>), RemoteError> {
     let st = api
         .status()
         .map_err(|e| refused("cannot read the daemon's status", e))?;
     let cfg = api
         .config()
         .map_err(|e| refused("cannot read the daemon's configuration", e))?;
-    let plan = plan(opts, &st, &cfg, api)?;
+    let plan = match relay_amplitude {
+        None => plan(opts, &st, &cfg, api)?,
+        Some(amp) => {
+            let p = plan(
+                &RemoteOptions {
+                    step: Some(amp.unwrap_or(f64::NAN)),
+                    ..opts.clone()
+                },
+                &st,
+                &cfg,
+                api,
+            );
+            // No amplitude given: the default step size, if it also fits below p0.
+            let p = match (amp, p) {
+                (None, Err(_)) => plan(opts, &st, &cfg, api)?,
+                (_, p) => p?,
+            };
+            let d = p.step.abs();
+            if d > p.p0 + 1e-12 {
+                return Err(RemoteError::Refused(format!(
+                    "a relay amplitude of {d} W is not allowed: from the present {:.4} W the heaters cannot go below 0 W (hold them at a higher power first, e.g. stiltctl mode manual with a manual power above {d} W)",
+                    p.p0
+                )));
+            }
+            Plan { step: d, ..p }
+        }
+    };
     let saved = SavedState::from_daemon(&st, &cfg);
     let source = api
         .samples()
@@ -528,17 +724,42 @@ pub fn run_remote_step_test(
         })
         .map_err(|e| RemoteError::Refused(format!("cannot start the stream reader: {e}")))?;
     log(&format!(
-        "tune: daemon at {} (mode {}): holding every heater at {:.4} W (manual mode), step {:+.4} W, recording leg {}",
+        "tune: daemon at {} (mode {}): holding every heater at {:.4} W (manual mode), {} {:.4} W, recording leg {}",
         api.describe(),
         saved.mode,
         plan.p0,
+        if relay_amplitude.is_some() {
+            "relay ±"
+        } else {
+            "step"
+        },
         plan.step,
         plan.leg_name
     ));
-    let outcome = drive(api, opts, &plan, &rx, cancel, log);
+    let context = AnalysisContext {
+        loop_name: format!(
+            "leg {} temperature loop (every heater stepped together through the API)",
+            plan.leg_name
+        ),
+        world: format!("daemon at {}, its own time stamps", api.describe()),
+        control_period_s: plan.period_s,
+        current: gains_from_wire(&cfg.control.leg_loop),
+        current_source: "in force (daemon)".into(),
+    };
+    let mut watch = Watch {
+        api,
+        plan,
+        rx,
+        cancel,
+        opts,
+        last_sample: Instant::now(),
+        last_status: Instant::now(),
+        manual_seen: false,
+    };
+    let outcome = body(&mut watch, log);
     // The reader thread ends at the stream's end or when it next sends; it is not joined
     // (a silent connection may block it in a read).
-    drop(rx);
+    drop(watch);
     drop(reader);
     log(&format!(
         "tune: restoring mode {}, manual power {} W",
@@ -546,20 +767,7 @@ pub fn run_remote_step_test(
     ));
     let restored = restore(api, &saved, opts.retry_pause);
     match (outcome, restored) {
-        (Ok(record), Ok(done)) => Ok(RemoteRun {
-            record,
-            context: AnalysisContext {
-                loop_name: format!(
-                    "leg {} temperature loop (every heater stepped together through the API)",
-                    plan.leg_name
-                ),
-                world: format!("daemon at {}, its own time stamps", api.describe()),
-                control_period_s: plan.period_s,
-                current: gains_from_wire(&cfg.control.leg_loop),
-                current_source: "in force (daemon)".into(),
-            },
-            restored: done,
-        }),
+        (Ok(v), Ok(done)) => Ok((v, context, done)),
         (Ok(_), Err(f)) => Err(RemoteError::Aborted {
             why: "the test finished".into(),
             saved,
@@ -588,8 +796,6 @@ pub fn gains_from_wire(g: &GainsWire) -> LoopGains {
 
 #[derive(Debug, Clone, Copy, PartialEq)]
 enum Phase {
-    /// Waiting for the first row in manual mode at the held power.
-    Start,
     Settle,
     Baseline,
     /// The step was asked for; waiting for the first row that carries it.
@@ -598,102 +804,26 @@ enum Phase {
 }
 
 fn drive(
-    api: &dyn DaemonApi,
+    w: &mut Watch<'_>,
     opts: &RemoteOptions,
-    plan: &Plan,
-    rx: &mpsc::Receiver<Result<SampleWire, String>>,
-    cancel: &AtomicBool,
     log: &mut dyn FnMut(&str),
 ) -> Result<StepRecord, String> {
     let i = opts.leg;
-    let p1 = plan.p0 + plan.step;
-    api.set_manual_power(plan.p0)
-        .map_err(|e| format!("setting the manual power to {} W failed: {e}", plan.p0))?;
-    api.set_mode("manual")
-        .map_err(|e| format!("switching the daemon to manual mode failed: {e}"))?;
-    let mut phase = Phase::Start;
-    let (mut t0, mut t_asked, mut t_step) = (f64::NAN, f64::NAN, f64::NAN);
+    let (p0, step) = (w.plan.p0, w.plan.step);
+    let p1 = p0 + step;
+    let t0 = w.hold(log)?;
+    let mut phase = Phase::Settle;
+    let (mut t_asked, mut t_step) = (f64::NAN, f64::NAN);
     let (mut time_s, mut output) = (Vec::new(), Vec::new());
-    let mut peak_p = (f64::NEG_INFINITY, plan.max_power_w);
+    let mut peak_p = (f64::NEG_INFINITY, w.plan.max_power_w);
     let mut peak_total = f64::NEG_INFINITY;
     let mut peak_temp = f64::NEG_INFINITY;
-    let mut last_sample = Instant::now();
-    let mut last_status = Instant::now();
     let mut last_progress: Option<Instant> = None;
-    let t_limit = plan.max_leg_temp_c - LEG_TEMP_MARGIN_K;
     loop {
-        if cancel.load(Ordering::SeqCst) {
-            return Err("stopped by a signal (Ctrl-C or SIGTERM)".into());
-        }
-        if last_status.elapsed() >= opts.status_every {
-            last_status = Instant::now();
-            let st = api
-                .status()
-                .map_err(|e| format!("cannot read the daemon's status: {e}"))?;
-            if let Some(a) = st
-                .alarms
-                .iter()
-                .find(|a| a.active || !plan.alarms_before.contains(&a.id))
-            {
-                return Err(format!("alarm {} during the test: {}", a.id, a.message));
-            }
-        }
-        let s = match rx.recv_timeout(Duration::from_millis(100)) {
-            Ok(Ok(s)) => s,
-            Ok(Err(e)) => return Err(e),
-            Err(mpsc::RecvTimeoutError::Timeout) => {
-                if last_sample.elapsed() >= opts.stall_after {
-                    return Err(format!(
-                        "no sample from the daemon for {:.0} s: the connection was lost or its loop stopped",
-                        opts.stall_after.as_secs_f64()
-                    ));
-                }
-                continue;
-            }
-            Err(mpsc::RecvTimeoutError::Disconnected) => {
-                return Err("the stream reader stopped (connection lost)".into());
-            }
-        };
-        last_sample = Instant::now();
-        let Some(leg) = s.legs.get(i) else {
-            return Err(format!(
-                "a sample carries {} legs, not the leg {} under test",
-                s.legs.len(),
-                i + 1
-            ));
-        };
-        let power = leg.power_w;
-        let temp = leg.temp_c.unwrap_or(f64::NAN);
-        if phase != Phase::Start && s.mode != "manual" {
-            return Err(format!(
-                "the daemon left manual mode (now {}): an interlock or another client changed it",
-                s.mode
-            ));
-        }
-        if let Some((k, t)) = s
-            .legs
-            .iter()
-            .enumerate()
-            .filter_map(|(k, l)| l.temp_c.map(|t| (k, t)))
-            .find(|(_, t)| *t > t_limit)
-        {
-            return Err(format!(
-                "leg {} reached {t:.3} °C, within {LEG_TEMP_MARGIN_K} K of limits.max_leg_temp_c = {} °C: test stopped; use a smaller step",
-                k + 1,
-                plan.max_leg_temp_c
-            ));
-        }
+        let s = w.next()?;
+        let power = s.legs[i].power_w;
+        let temp = s.legs[i].temp_c.unwrap_or(f64::NAN);
         match phase {
-            Phase::Start => {
-                if s.mode == "manual" && (power - plan.p0).abs() < 1e-6 {
-                    t0 = s.t_s;
-                    phase = Phase::Settle;
-                    log(&format!(
-                        "tune: manual mode at {:.4} W from daemon time {:.1} s; settling {} s",
-                        plan.p0, t0, opts.settle_s
-                    ));
-                }
-            }
             Phase::Settle => {
                 if s.t_s >= t0 + opts.settle_s {
                     phase = Phase::Baseline;
@@ -701,7 +831,8 @@ fn drive(
             }
             Phase::Baseline => {
                 if s.t_s >= t0 + opts.settle_s + opts.baseline_s {
-                    api.set_manual_power(p1)
+                    w.api
+                        .set_manual_power(p1)
                         .map_err(|e| format!("stepping the manual power to {p1} W failed: {e}"))?;
                     t_asked = s.t_s;
                     phase = Phase::Stepping;
@@ -715,10 +846,10 @@ fn drive(
                     // The row's command goes out at the end of its tick.
                     t_step = s.t_s;
                     phase = Phase::Record;
-                } else if s.t_s > t_asked + 50.0 * plan.period_s {
+                } else if s.t_s > t_asked + 50.0 * w.plan.period_s {
                     return Err(format!(
                         "the daemon accepted the step to {p1} W but leg {} still draws {power} W after 50 control periods",
-                        plan.leg_name
+                        w.plan.leg_name
                     ));
                 }
             }
@@ -756,16 +887,105 @@ fn drive(
         target: Target::Leg(i),
         input_unit: "W",
         output_unit: "K",
-        input_before: plan.p0,
-        input_step: plan.step,
+        input_before: p0,
+        input_step: step,
         step_time_s: t_step,
         time_s,
         output,
         drift_per_s: drift,
         limit_ticks: 0,
         peak_power_w: peak_p,
-        peak_total_power_w: (peak_total, plan.max_total_w),
-        peak_leg_temp_c: (peak_temp, plan.max_leg_temp_c),
+        peak_total_power_w: (peak_total, w.plan.max_total_w),
+        peak_leg_temp_c: (peak_temp, w.plan.max_leg_temp_c),
+    })
+}
+
+fn drive_relay(
+    w: &mut Watch<'_>,
+    opts: &RemoteOptions,
+    relay: &RelayOptions,
+    eps: f64,
+    log: &mut dyn FnMut(&str),
+) -> Result<RelayRecord, String> {
+    let i = opts.leg;
+    let (p0, d) = (w.plan.p0, w.plan.step);
+    let t0 = w.hold(log)?;
+    // Settle, then the operating point: the mean over the baseline.
+    let (mut sum, mut n) = (0.0, 0usize);
+    loop {
+        let s = w.next()?;
+        if s.t_s >= t0 + opts.settle_s + opts.baseline_s {
+            break;
+        }
+        if s.t_s >= t0 + opts.settle_s
+            && let Some(t) = s.legs[i].temp_c
+        {
+            sum += t;
+            n += 1;
+        }
+    }
+    if n < 5 {
+        return Err("fewer than 5 baseline samples arrived for the relay's operating point".into());
+    }
+    let r = sum / n as f64;
+    let mut u = d;
+    w.api
+        .set_manual_power(p0 + u)
+        .map_err(|e| format!("the relay's first switch to {} W failed: {e}", p0 + u))?;
+    let t_start = w.next()?.t_s;
+    log(&format!(
+        "tune: relay from daemon time {t_start:.1} s around {r:.4} °C, ±{d:.4} W, ε = {eps} K"
+    ));
+    let (mut time_s, mut output, mut out_relay) = (Vec::new(), Vec::new(), Vec::new());
+    let wanted = 2 * (relay.cycles + 3);
+    let mut switches = 0usize;
+    let mut last_progress = Instant::now();
+    while switches < wanted {
+        let s = w.next()?;
+        if s.t_s > t_start + relay.max_s {
+            return Err(format!(
+                "the relay made {switches} of {wanted} switches in {} s: raise --relay-amplitude or lower --relay-hysteresis",
+                relay.max_s
+            ));
+        }
+        let Some(t) = s.legs[i].temp_c else { continue };
+        let y = t - r;
+        // The row shows the power in force during its tick.
+        time_s.push(s.t_s);
+        output.push(y);
+        out_relay.push(s.legs[i].power_w - p0);
+        // Relay on the error e = r − y (heating raises y): heat when below.
+        let e = -y;
+        let next = if e > eps && u < 0.0 {
+            Some(d)
+        } else if e < -eps && u > 0.0 {
+            Some(-d)
+        } else {
+            None
+        };
+        if let Some(v) = next {
+            u = v;
+            switches += 1;
+            w.api
+                .set_manual_power(p0 + u)
+                .map_err(|e| format!("the relay's switch to {} W failed: {e}", p0 + u))?;
+        }
+        if last_progress.elapsed() >= opts.progress_every {
+            last_progress = Instant::now();
+            log(&format!(
+                "tune: relay switch {switches} of {wanted} (daemon time {:.1} s): leg {} {t:.4} °C at {:.4} W",
+                s.t_s,
+                i + 1,
+                s.legs[i].power_w
+            ));
+        }
+    }
+    Ok(RelayRecord {
+        amplitude: d,
+        hysteresis: eps,
+        time_s,
+        output,
+        relay: out_relay,
     })
 }
 
@@ -778,7 +998,6 @@ fn progress_line(
     o: &RemoteOptions,
 ) -> String {
     let (name, done, total) = match phase {
-        Phase::Start => ("waiting for manual mode", 0.0, 0.0),
         Phase::Settle => ("settling", s.t_s - t0, o.settle_s),
         Phase::Baseline | Phase::Stepping => ("baseline", s.t_s - t0 - o.settle_s, o.baseline_s),
         Phase::Record => ("recording", s.t_s - t_step, o.record_s),
@@ -1250,6 +1469,50 @@ mod tests {
             .to_string();
         assert!(e.contains("no leg 6") && e.contains("A, B, C"), "{e}");
         assert!(f.state().calls.is_empty() && f2.state().calls.is_empty());
+    }
+
+    #[test]
+    fn a_relay_test_oscillates_inside_its_bounds_and_restores() {
+        // Held at 1 W in manual mode (the fake's plant starts at equilibrium there).
+        let f = Fake::new().with(|s| s.mode = "manual".into());
+        let relay = RelayOptions {
+            amplitude: Some(0.5),
+            hysteresis: Some(0.003),
+            max_s: 60.0,
+            cycles: 4,
+        };
+        let flag = AtomicBool::new(false);
+        let run = run_remote_relay_test(&f, &opts(), &relay, &flag, &mut |_| {}).unwrap();
+        {
+            let s = f.state();
+            assert_eq!(
+                (s.mode.as_str(), s.manual_w),
+                ("manual", 1.0),
+                "{:?}",
+                s.calls
+            );
+            // Only p0 and p0 ± d were ever asked for.
+            for c in &s.calls {
+                if let Some(w) = c.strip_prefix("manual-power ") {
+                    assert!(["1", "1.5", "0.5"].contains(&w), "{c}");
+                }
+            }
+        }
+        let r = &run.record;
+        assert!(
+            r.relay.iter().all(|u| (u.abs() - 0.5).abs() < 1e-9),
+            "{:?}",
+            r.relay
+        );
+        let switches = r.relay.windows(2).filter(|w| w[0] != w[1]).count();
+        assert!(switches >= 2 * 4, "{switches} switches");
+        // The output stays within what the relay can drive: |y| < K·d.
+        assert!(r.output.iter().all(|y| y.abs() < K * 0.5), "{:?}", r.output);
+        // The amplitude must also fit below p0: from 0 W (off) it cannot.
+        let off = Fake::new();
+        let e = run_remote_relay_test(&off, &opts(), &relay, &flag, &mut |_| {}).unwrap_err();
+        assert!(e.to_string().contains("below 0 W"), "{e}");
+        assert!(off.state().calls.is_empty());
     }
 
     #[test]
