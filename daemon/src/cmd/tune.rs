@@ -264,7 +264,7 @@ fn run_daemon(a: &TuneArgs) -> ExitCode {
     }
     if !(a.progress_every.is_finite() && a.progress_every > 0.0 && a.progress_every <= 3600.0) {
         return usage(format!(
-            "--progress-every {}: give 0 to 3600 seconds",
+            "--progress-every {}: give more than 0 and at most 3600 seconds",
             a.progress_every
         ));
     }
