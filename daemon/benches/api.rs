@@ -277,6 +277,7 @@ mod micro {
         (
             Handles {
                 status: rx,
+                settings: h.settings.clone(),
                 rows,
                 requests: req,
             },

@@ -18,6 +18,7 @@ use serde::Serialize;
 use stilt_config::{Config, Mode};
 use stilt_hil_sim::SimStage;
 
+use crate::analysis::stats::Summary;
 use crate::pipeline::{Pipeline, PipelineCounters};
 use crate::rows::{CountingSink, RowSink, SinkReport};
 use crate::runtime::{self, RunEnd, RuntimeOptions, SimBackend};
@@ -80,27 +81,12 @@ pub struct AxisStats {
     pub peak_to_peak_urad: f64,
 }
 
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone, Copy, Default)]
 struct Acc {
-    n: u64,
-    sum: f64,
-    sum2: f64,
+    /// Count, mean, spread and range (Welford's update, as the reports use).
+    s: Summary,
+    /// Sum of squared deviations from the setpoint in use.
     dev2: f64,
-    min: f64,
-    max: f64,
-}
-
-impl Default for Acc {
-    fn default() -> Self {
-        Acc {
-            n: 0,
-            sum: 0.0,
-            sum2: 0.0,
-            dev2: 0.0,
-            min: f64::INFINITY,
-            max: f64::NEG_INFINITY,
-        }
-    }
 }
 
 impl Acc {
@@ -108,24 +94,17 @@ impl Acc {
         if !x.is_finite() {
             return;
         }
-        self.n += 1;
-        self.sum += x;
-        self.sum2 += x * x;
+        let _ = self.s.push(x);
         self.dev2 += (x - setpoint) * (x - setpoint);
-        self.min = self.min.min(x);
-        self.max = self.max.max(x);
     }
     fn stats(&self) -> Option<AxisStats> {
-        (self.n > 0).then(|| {
-            let n = self.n as f64;
-            let mean = self.sum / n;
-            AxisStats {
-                n: self.n,
-                mean_urad: mean,
-                rms_from_setpoint_urad: (self.dev2 / n).sqrt(),
-                rms_about_mean_urad: (self.sum2 / n - mean * mean).max(0.0).sqrt(),
-                peak_to_peak_urad: self.max - self.min,
-            }
+        let n = self.s.count();
+        Some(AxisStats {
+            n,
+            mean_urad: self.s.mean()?,
+            rms_from_setpoint_urad: (self.dev2 / n as f64).sqrt(),
+            rms_about_mean_urad: self.s.population_variance()?.sqrt(),
+            peak_to_peak_urad: self.s.peak_to_peak()?,
         })
     }
 }

@@ -48,7 +48,7 @@ use crate::rows::{ControlRow, EventKind, Quality, RowSink, SinkReport};
 use crate::sim::TickReport;
 use crate::status::{
     AlarmStatus, Applied, AxisStatus, ChannelStatus, ControlRequest, Handles, LegStatus,
-    LoopTiming, RecordingStatus, Refused, Request, Status,
+    LoopTiming, RecordingStatus, Refused, Request, Settings, Status,
 };
 
 /// Readings gathered since the last tick, and instrument counters.
@@ -160,11 +160,14 @@ pub fn start(
     let pipeline = Pipeline::new(cfg.clone(), sink, opts.start_utc_ns);
     let status0 = Arc::new(initial_status(&cfg, opts.start_utc_ns));
     let (status_tx, status_rx) = watch::channel(status0);
+    let (settings_tx, settings_rx) =
+        watch::channel(Arc::new(Settings::from_config(Arc::new(cfg.clone()))));
     let (rows_tx, _) = broadcast::channel(ROWS_CAPACITY);
     let (req_tx, req_rx) = mpsc::channel(REQUESTS_CAPACITY);
     let (stop_tx, stop_rx) = watch::channel(false);
     let handles = Handles {
         status: status_rx,
+        settings: settings_rx,
         rows: rows_tx.clone(),
         requests: req_tx,
     };
@@ -175,6 +178,7 @@ pub fn start(
         backend,
         opts,
         status_tx,
+        settings_tx,
         rows_tx,
         jitter: VecDeque::with_capacity(JITTER_WINDOW),
         timing: LoopTiming::default(),
@@ -254,6 +258,7 @@ struct Loop {
     backend: Box<dyn Backend>,
     opts: RuntimeOptions,
     status_tx: watch::Sender<Arc<Status>>,
+    settings_tx: watch::Sender<Arc<Settings>>,
     rows_tx: broadcast::Sender<Arc<ControlRow>>,
     jitter: VecDeque<f64>,
     timing: LoopTiming,
@@ -295,8 +300,10 @@ impl Loop {
                     let now_s = t0.elapsed().as_secs_f64() * speed;
                     let asked = format!("{:?}", req.change);
                     let answer = self.handle(now_s, req.change, &req.who);
-                    if let Err(r) = &answer {
-                        tracing::info!(who = %req.who, field = %r.field, "request refused: {asked}: {}", r.message);
+                    match &answer {
+                        // Published before the answer leaves: whoever asked reads it back.
+                        Ok(_) => self.publish_settings(),
+                        Err(r) => tracing::info!(who = %req.who, field = %r.field, "request refused: {asked}: {}", r.message),
                     }
                     let _ = req.reply.send(answer);
                 }
@@ -461,6 +468,21 @@ impl Loop {
             channels: r.channels.clone(),
             ready,
         }
+    }
+
+    /// Publishes the configuration in force (see [`Settings`]).
+    fn publish_settings(&self) {
+        let s = Settings {
+            file: Arc::new(self.cfg.clone()),
+            control: self.pipeline.controller().control().clone(),
+        };
+        self.settings_tx.send_if_modified(|cur| {
+            let changed = **cur != s;
+            if changed {
+                *cur = Arc::new(s);
+            }
+            changed
+        });
     }
 
     /// Checks a request against the configuration and applies it, or refuses it

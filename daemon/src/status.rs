@@ -12,7 +12,7 @@
 use std::path::PathBuf;
 use std::sync::Arc;
 
-use stilt_config::{LoopGains, Mode};
+use stilt_config::{Config, Control, LoopGains, Mode};
 
 use crate::rows::{ControlRow, LoopTerms, Quality};
 
@@ -211,11 +211,34 @@ pub struct Request {
     pub reply: tokio::sync::oneshot::Sender<Result<Applied, Refused>>,
 }
 
+/// The configuration in force, as the loop publishes it: at start, after every change it
+/// accepts and after every reload it applies. The one source of truth for what runs (the
+/// API reads gains and manual power from here, never from a copy of its own).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Settings {
+    /// The configuration as last loaded: at start, or by a reload that was applied.
+    pub file: Arc<Config>,
+    /// The control settings in force: the file's, with the changes accepted since.
+    pub control: Control,
+}
+
+impl Settings {
+    /// Settings straight from a configuration, nothing changed yet.
+    pub fn from_config(cfg: Arc<Config>) -> Self {
+        Settings {
+            control: cfg.control.clone(),
+            file: cfg,
+        }
+    }
+}
+
 /// The channels the control loop offers to the outside (HTTP, metrics, systemd).
 #[derive(Debug, Clone)]
 pub struct Handles {
     /// Latest status.
     pub status: tokio::sync::watch::Receiver<Arc<Status>>,
+    /// The configuration in force.
+    pub settings: tokio::sync::watch::Receiver<Arc<Settings>>,
     /// Live control rows (one per tick).
     pub rows: tokio::sync::broadcast::Sender<Arc<ControlRow>>,
     /// Requests for changes.

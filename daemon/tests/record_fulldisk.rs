@@ -16,23 +16,6 @@ use stilt_daemon::rows::{EventKind, RowSink};
 const CHILD: &str = "STILT_RECORD_FULL_CHILD_DIR";
 const LIMIT_BYTES: u64 = 400 * 1024;
 
-/// Ignores SIGXFSZ and sets the soft file-size limit (the hard limit stays).
-#[allow(unsafe_code)]
-fn set_file_size_limit(bytes: Option<u64>) {
-    // SAFETY: plain libc calls on this process with valid arguments; `signal` installs
-    // SIG_IGN (no handler code runs), and `lim` is a valid, initialised rlimit.
-    unsafe {
-        libc::signal(libc::SIGXFSZ, libc::SIG_IGN);
-        let mut lim = libc::rlimit {
-            rlim_cur: 0,
-            rlim_max: 0,
-        };
-        assert_eq!(libc::getrlimit(libc::RLIMIT_FSIZE, &mut lim), 0);
-        lim.rlim_cur = bytes.map_or(lim.rlim_max, |b| b as libc::rlim_t);
-        assert_eq!(libc::setrlimit(libc::RLIMIT_FSIZE, &lim), 0);
-    }
-}
-
 fn child(dir: &Path) {
     let cfg = config();
     let mut o = RecorderOptions::from_config(&cfg);

@@ -216,6 +216,12 @@ async fn reload_applies_gains_and_setpoints_refuses_structure_and_audits() {
         opts,
     );
     tokio::time::sleep(std::time::Duration::from_secs(10)).await;
+    // A change through the API shows in the published settings at once.
+    let mut g = cfg.control.leg_loop;
+    g.kp = 7.0;
+    ask(&h, ControlRequest::SetLegGains(g)).await.unwrap();
+    assert_eq!(h.settings.borrow().control.leg_loop.kp, 7.0);
+    assert_eq!(h.settings.borrow().file.control.leg_loop.kp, 8.0);
 
     // A bad file: refused with the located errors, running configuration kept.
     std::fs::write(
@@ -229,6 +235,7 @@ async fn reload_applies_gains_and_setpoints_refuses_structure_and_audits() {
         "{}",
         r.message
     );
+    assert_eq!(h.settings.borrow().control.leg_loop.kp, 7.0, "refused: kept");
     // A structural change: refused.
     std::fs::write(
         &path,
@@ -255,6 +262,11 @@ async fn reload_applies_gains_and_setpoints_refuses_structure_and_audits() {
     );
     tokio::time::sleep(std::time::Duration::from_secs(2)).await;
     assert_eq!(h.status.borrow().axes[1].target_urad, 0.5);
+    // What the API's /v1/config reads: the reloaded file, and the gains now in force.
+    let s = h.settings.borrow().clone();
+    assert_eq!(s.control.leg_loop.kp, 6.0);
+    assert_eq!(s.file.control.leg_loop.kp, 6.0);
+    assert_eq!(s.control.setpoint_urad[1], 0.5);
     task.await.unwrap().unwrap();
 
     let events = sink.events();
@@ -262,7 +274,7 @@ async fn reload_applies_gains_and_setpoints_refuses_structure_and_audits() {
     assert!(
         audited
             .iter()
-            .any(|e| e.detail.contains("leg_loop: kp=8") && e.detail.contains("kp=6")),
+            .any(|e| e.detail.contains("leg_loop: kp=7") && e.detail.contains("kp=6")),
         "{audited:#?}"
     );
     assert!(audited.iter().any(|e| e.detail.contains("reload refused")));

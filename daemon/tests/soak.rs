@@ -1,13 +1,25 @@
 //! The soak: three simulated days on the demo stage with a schedule of trouble, in
-//! virtual time (seconds of wall time). The schedule is invented for this test.
+//! virtual time (seconds of wall time), recorded to HDF5 by the real recorder. The
+//! schedule is invented for this test. The soak runs in a child process (this test
+//! re-run with an environment variable) because the full disk is made honestly with
+//! RLIMIT_FSIZE, which applies to the whole process.
 //!
-//! Checks: no panic; every tick accounted for (a control row for every second, in
-//! order, no gaps); every fault raised its alarm and cleared; the tilt back within
-//! 50 nrad of its setpoint three hours after each disturbance; memory flat (the last
-//! day's peak resident size within 5 % of the first day's).
+//! Checks: no panic; every tick accounted for (a control row for every second leaves the
+//! loop, in order, no gaps; in the recording every tick is a row or counted in a
+//! `dropped` event, and the missing ones lie between the recorder's alarm and its
+//! recovery); every fault raised its alarm and cleared; the tilt back within 50 nrad of
+//! its setpoint three hours after each disturbance; memory flat (the last day's peak
+//! resident size within 5 % of the first day's).
 
+mod record_common;
+
+use std::path::Path;
+use std::time::{Duration, Instant};
+
+use record_common::{T0_UTC_NS, set_file_size_limit, spawn_child, tmp_dir};
 use stilt_config::Mode;
 use stilt_daemon::pipeline::{Command, Pipeline};
+use stilt_daemon::record::{Recorder, RecorderHandle, RecorderOptions, SegmentSet, TimeWindow};
 use stilt_daemon::rows::{
     ControlRow, EventKind, EventRow, Quality, RowSink, SinkError, SinkReport, TiltSample,
 };
@@ -15,10 +27,20 @@ use stilt_daemon::sim::{SimLoop, TickReport};
 use stilt_hil_sim::SimStage;
 
 const H: f64 = 3600.0;
+/// Set in the child: the folder to record into.
+const CHILD: &str = "STILT_SOAK_CHILD_DIR";
+/// The disk fills at this simulated time and empties at the next. On the first day, so
+/// that the rows held back meanwhile (bounded by `queue_capacity_rows`) count in the first
+/// day's peak memory, against which the last day's is compared.
+const DISK_FULL: (f64, f64) = (14.0 * H, 18.0 * H);
 
-/// Keeps events, checks control rows on the fly, counts the rest (constant memory).
+/// Keeps events, checks control rows on the fly, counts the rest (constant memory), and
+/// passes every row on to the recorder.
 #[derive(Clone, Default)]
-struct SoakSink(std::sync::Arc<std::sync::Mutex<SoakState>>);
+struct SoakSink(
+    std::sync::Arc<std::sync::Mutex<SoakState>>,
+    Option<std::sync::Arc<std::sync::Mutex<Box<dyn RowSink>>>>,
+);
 
 #[derive(Default)]
 struct SoakState {
@@ -28,22 +50,37 @@ struct SoakState {
     events: Vec<EventRow>,
 }
 
+impl SoakSink {
+    fn on(&self, f: impl FnOnce(&mut dyn RowSink)) {
+        if let Some(r) = &self.1 {
+            f(r.lock().unwrap().as_mut());
+        }
+    }
+}
+
 impl RowSink for SoakSink {
-    fn tilt(&mut self, _: &TiltSample) {
+    fn tilt(&mut self, t: &TiltSample) {
         self.0.lock().unwrap().tilt_rows += 1;
+        self.on(|r| r.tilt(t));
     }
     fn control(&mut self, r: &ControlRow) {
-        let mut s = self.0.lock().unwrap();
-        if r.tick != s.next_tick {
-            s.gaps += 1;
+        {
+            let mut s = self.0.lock().unwrap();
+            if r.tick != s.next_tick {
+                s.gaps += 1;
+            }
+            s.next_tick = r.tick + 1;
         }
-        s.next_tick = r.tick + 1;
+        self.on(|s| s.control(r));
     }
     fn event(&mut self, e: &EventRow) {
         self.0.lock().unwrap().events.push(e.clone());
+        self.on(|r| r.event(e));
     }
     fn finish(&mut self) -> Result<SinkReport, SinkError> {
-        Ok(SinkReport::default())
+        let mut rep = Ok(SinkReport::default());
+        self.on(|r| rep = r.finish());
+        rep
     }
 }
 
@@ -68,19 +105,155 @@ enum Trouble {
     HeaterFixed(usize),
     AirStep(f64),
     Bump([f64; 2]),
+    DiskFull,
+    DiskEmptied,
 }
 
 #[test]
 fn three_days_with_trouble() {
+    if let Ok(dir) = std::env::var(CHILD) {
+        soak(Path::new(&dir));
+        return;
+    }
+    let dir = tmp_dir("soak");
+    let t0 = Instant::now();
+    let (mut child, rx) = spawn_child("three_days_with_trouble", &[(CHILD, dir.to_str().unwrap())]);
+    let mut lines = Vec::new();
+    while let Ok(l) = rx.recv_timeout(Duration::from_secs(120)) {
+        lines.push(l);
+    }
+    let status = child.wait().unwrap();
+    assert!(
+        status.success(),
+        "the soak failed (see its stderr above): {status:?}\n{}",
+        lines.join("\n")
+    );
+    assert!(lines.iter().any(|l| l.ends_with("SOAK DONE")), "{lines:?}");
+    for l in lines.iter().filter(|l| l.contains("SOAK MEMORY")) {
+        eprintln!("{l}");
+    }
+    check_recording(&dir);
+    std::fs::remove_dir_all(&dir).ok();
+    eprintln!(
+        "soak with recording: {:.1} s of wall time",
+        t0.elapsed().as_secs_f64()
+    );
+}
+
+/// The recording the soak left: every tick is a row or counted as dropped, and the missing
+/// ones lie between the recorder's alarm and its recovery.
+fn check_recording(dir: &Path) {
+    let all = SegmentSet::open_dir(dir).expect("every segment opens");
+    // A batch that failed half-written may be in two segments: count distinct ticks.
+    let mut ticks: Vec<u64> = all
+        .control(TimeWindow::ALL)
+        .map(|r| r.expect("control rows read").tick)
+        .collect();
+    assert!(ticks.windows(2).all(|w| w[0] <= w[1]), "rows out of order");
+    ticks.dedup();
+    let events: Vec<EventRow> = all
+        .events(TimeWindow::ALL)
+        .map(|e| e.expect("events read"))
+        .collect();
+    let of = |kind: EventKind, starts: &str| {
+        events
+            .iter()
+            .filter(|e| e.kind == kind && e.source == "recorder" && e.detail.starts_with(starts))
+            .map(|e| e.stamp.t_mono_s)
+            .collect::<Vec<_>>()
+    };
+    let stopped = of(EventKind::Alarm, "recording stopped");
+    let resumed = of(EventKind::Recording, "recording resumed");
+    assert_eq!(stopped.len(), 1, "one alarm for the full disk: {events:?}");
+    assert_eq!(resumed.len(), 1, "one recovery: {events:?}");
+    let (t_stop, t_resume) = (stopped[0], resumed[0]);
+    // The writer runs behind the loop by what the queue and the open chunks hold (the
+    // 20,000 rows held back are about half an hour at 11 rows a second): allow an hour.
+    let lag = H;
+    assert!(
+        t_stop >= DISK_FULL.0 - lag
+            && t_resume >= DISK_FULL.1 - lag
+            && t_resume < DISK_FULL.1 + 12.0 * H,
+        "alarm at {t_stop} s, recovery at {t_resume} s, disk full {DISK_FULL:?}"
+    );
+    // "dropped N rows (tilt a, control b, events c): why"
+    let dropped_control: u64 = events
+        .iter()
+        .filter(|e| e.kind == EventKind::Dropped)
+        .map(|e| {
+            let d = &e.detail;
+            let i = d.find("control ").expect("a control count") + "control ".len();
+            d[i..]
+                .split(|c: char| !c.is_ascii_digit())
+                .next()
+                .unwrap()
+                .parse::<u64>()
+                .unwrap()
+        })
+        .sum();
+    let total = 72 * 3600u64;
+    let missing: Vec<u64> = {
+        let mut m = Vec::new();
+        let mut k = 0;
+        for t in 0..total {
+            if ticks.get(k) == Some(&t) {
+                k += 1;
+            } else {
+                m.push(t);
+            }
+        }
+        m
+    };
+    assert!(
+        !missing.is_empty(),
+        "the full disk must have cost rows beyond the bound held back"
+    );
+    assert!(
+        missing.len() as u64 <= dropped_control,
+        "{} ticks missing but only {dropped_control} control rows reported dropped",
+        missing.len()
+    );
+    let (lo, hi) = (missing[0] as f64, *missing.last().unwrap() as f64);
+    assert!(
+        lo >= DISK_FULL.0 - lag && lo >= t_stop - lag && hi <= t_resume,
+        "ticks missing from {lo} to {hi} s, outside the outage {t_stop} … {t_resume} s"
+    );
+    // The run ended cleanly: the last segment is closed and holds the end of the run.
+    let last = all.segments().last().unwrap();
+    assert!(last.closed, "{:?}", last.path);
+    assert_eq!(*ticks.last().unwrap(), total - 1);
+}
+
+/// The soak itself (in the child process).
+fn soak(dir: &Path) {
     let cfg = stilt_config::load_str(stilt_config::DEMO_SCENARIO, "demo").unwrap();
-    let sink = SoakSink::default();
+    let mut ro = RecorderOptions::from_config(&cfg);
+    ro.dir = dir.to_path_buf();
+    ro.run_id = Some("soak".into());
+    ro.blocking = true;
+    ro.start_utc_ns = Some(T0_UTC_NS);
+    ro.fsync = false;
+    ro.flush_interval = Duration::from_millis(200);
+    ro.retry_interval = Duration::from_millis(100);
+    ro.queue_capacity_rows = 20_000;
+    let (rec, handle) = Recorder::start(&cfg, ro).expect("the recorder starts");
+    let rec: Box<dyn RowSink> = Box::new(rec);
+    let sink = SoakSink(
+        Default::default(),
+        Some(std::sync::Arc::new(std::sync::Mutex::new(rec))),
+    );
     let stage = SimStage::new(&cfg);
-    let mut sim = SimLoop::new(stage, Pipeline::new(cfg.clone(), Box::new(sink.clone()), 0));
+    let mut sim = SimLoop::new(
+        stage,
+        Pipeline::new(cfg.clone(), Box::new(sink.clone()), T0_UTC_NS),
+    );
 
     // (time, trouble); disturbances end at the second time of each pair.
     let schedule: Vec<(f64, Trouble)> = vec![
         (12.0 * H, Trouble::ThermometerDead(1)),
         (12.0 * H + 60.0, Trouble::ThermometerBack(1)),
+        (DISK_FULL.0, Trouble::DiskFull),
+        (DISK_FULL.1, Trouble::DiskEmptied),
         (20.0 * H, Trouble::TiltGarbled),
         (20.0 * H + 30.0, Trouble::TiltClean),
         (30.0 * H, Trouble::HeaterOpen(2)),
@@ -100,6 +273,10 @@ fn three_days_with_trouble() {
     .into_iter()
     .map(|t| t + 3.0 * H)
     .collect();
+    assert!(
+        schedule.windows(2).all(|w| w[0].0 < w[1].0),
+        "the schedule is in time order"
+    );
     let mut next = 0;
     let mut rss_day = [0u64; 3];
     let mut worst_after: Vec<f64> = vec![0.0; checks.len()];
@@ -129,6 +306,8 @@ fn three_days_with_trouble() {
                 Trouble::Bump(b) => st.set_bump_urad(b),
                 Trouble::TiltGarbled => sim.set_tilt_fault(Some(Quality::BadFrame)),
                 Trouble::TiltClean => sim.set_tilt_fault(None),
+                Trouble::DiskFull => set_file_size_limit(Some(0)),
+                Trouble::DiskEmptied => disk_emptied(&handle),
             }
             next += 1;
         }
@@ -141,6 +320,17 @@ fn three_days_with_trouble() {
         let _ = sim.pipeline_mut().acknowledge(now, None, "soak-operator");
     }
 
+    assert_eq!(
+        sim.pipeline_mut().controller().mode(),
+        Mode::Level,
+        "no interlock took the stage to safe"
+    );
+    let end = sim.time_s();
+    let (report, _) = sim
+        .into_pipeline()
+        .finish(end, "soak finished")
+        .expect("the recording closes after the disk emptied");
+    assert!(report.dropped_rows > 0, "{report:?}");
     let st = sink.0.lock().unwrap();
     assert_eq!(st.next_tick, 72 * 3600, "a control row for every second");
     assert_eq!(st.gaps, 0, "no tick missing");
@@ -166,11 +356,6 @@ fn three_days_with_trouble() {
         st.events.iter().any(|e| e.kind == EventKind::Acknowledge),
         "alarms were acknowledged"
     );
-    assert_eq!(
-        sim.pipeline_mut().controller().mode(),
-        Mode::Level,
-        "no interlock took the stage to safe"
-    );
     for (k, w) in worst_after.iter().enumerate() {
         assert!(
             *w <= 0.050,
@@ -182,6 +367,22 @@ fn three_days_with_trouble() {
         d1 > 0.0 && d3 <= d1 * 1.05,
         "resident memory grew: day 1 peak {d1} KiB, day 3 peak {d3} KiB"
     );
+    println!("SOAK MEMORY peak resident KiB per day {rss_day:?}");
+    println!("SOAK DONE");
+}
+
+/// Space returns, once the recorder has noticed that it was gone (its alarm is up).
+fn disk_emptied(h: &RecorderHandle) {
+    let t0 = Instant::now();
+    while h.health().alarm.is_none() {
+        assert!(
+            t0.elapsed() < Duration::from_secs(30),
+            "no recorder alarm while the disk was full: {:?}",
+            h.health()
+        );
+        std::thread::sleep(Duration::from_millis(10));
+    }
+    set_file_size_limit(None);
 }
 
 /// The largest |true tilt − setpoint in use| in the hour that starts at each check time

@@ -2,8 +2,9 @@
 //! set; channel n drives leg n−1), then read each output's current back and compare the
 //! power `I²·R` with the commanded `V²/R`.
 //!
-//! On every (re)connection the task clears the supply's status (`*CLS`), switches each
-//! output on and writes the latest command again. Commands never queue up: a `watch`
+//! On every (re)connection the task clears the supply's status (`*CLS`), writes the latest
+//! command (zero at start: a supply may still hold a crashed run's setting) to each channel,
+//! then switches each output on. Commands never queue up: a `watch`
 //! channel holds only the newest, so a slow or absent supply costs the loop nothing and
 //! the supply always gets the freshest setting. A readback beyond `readback_tolerance_w`
 //! raises a fault event (and counts in the `heater_readback` channel); its return within
@@ -21,6 +22,15 @@ use crate::rows::Quality;
 
 /// Quiet time between SCPI messages (common practice for ASCII instruments on a serial line).
 const TURNAROUND: std::time::Duration = std::time::Duration::from_millis(1);
+
+/// A drive command the supply may be sent: clamped to 0 … `MAX_VOLTS`, zero if not finite.
+fn safe_volts(v: f64) -> f64 {
+    if v.is_finite() {
+        v.clamp(0.0, MAX_VOLTS)
+    } else {
+        0.0
+    }
+}
 
 /// Whether a readback disagrees with the command.
 pub fn mismatch(commanded_v: f64, measured_a: f64, r_ohm: f64, tolerance_w: f64) -> bool {
@@ -56,7 +66,15 @@ pub async fn run(
                 line.request(&mut session, HeaterRequest::ClearStatus).await,
                 Outcome::Disconnected
             );
+            // The latest command (zero at start) goes to every channel *before* its output
+            // is switched on: after a crash the supply may still hold the old setting.
+            let latest = cmd.borrow().volts.clone();
             for ch in 0..n {
+                let set = HeaterRequest::SetVoltage {
+                    channel: ch as u8 + 1,
+                    volts: safe_volts(latest.get(ch).copied().unwrap_or(0.0)),
+                };
+                ok &= !matches!(line.request(&mut session, set).await, Outcome::Disconnected);
                 let on = HeaterRequest::SetOutput {
                     channel: ch as u8 + 1,
                     on: true,
@@ -75,11 +93,7 @@ pub async fn run(
         let c = cmd.borrow_and_update().clone();
         let mut lost = false;
         for (ch, v) in c.volts.iter().enumerate().take(n) {
-            let volts = if v.is_finite() {
-                v.clamp(0.0, MAX_VOLTS)
-            } else {
-                0.0
-            };
+            let volts = safe_volts(*v);
             let set = HeaterRequest::SetVoltage {
                 channel: ch as u8 + 1,
                 volts,

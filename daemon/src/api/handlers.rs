@@ -39,7 +39,7 @@ pub async fn status(State(st): State<AppState>) -> Json<StatusWire> {
 /// `GET /v1/config`.
 pub async fn config(State(st): State<AppState>) -> Json<ConfigWire> {
     let running = st.running();
-    Json(ConfigWire::new(&st.inner.config, &running))
+    Json(ConfigWire::new(&st.settings().file, &running))
 }
 
 /// `GET /v1/health/live`: the server answers, so the process is alive.
@@ -297,7 +297,6 @@ pub async fn set_manual_power(
     .map_err(|e| invalid(&st, e))?;
     let asked = format!("manual power W: {v}");
     let r = submit(&st, &caller, ControlRequest::SetManualPower(v), asked).await?;
-    st.update_running(|r| r.manual_power_w = v);
     Ok(Json(r))
 }
 
@@ -398,10 +397,6 @@ async fn set_gains(
     };
     let asked = format!("{name} loop gains: {:?}", GainsWire::from(&g));
     let r = submit(&st, &caller, req, asked).await?;
-    st.update_running(|r| match which {
-        Loop::Tilt => r.tilt_loop = g,
-        Loop::Leg => r.leg_loop = g,
-    });
     Ok(Json(r))
 }
 

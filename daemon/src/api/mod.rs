@@ -33,7 +33,7 @@ pub mod wire;
 
 use std::future::Future;
 use std::net::SocketAddr;
-use std::sync::{Arc, Mutex};
+use std::sync::Arc;
 use std::time::Duration;
 
 use axum::Router;
@@ -54,8 +54,8 @@ use metrics::ApiCounters;
 /// How long graceful shutdown waits for open requests before closing them.
 pub const DRAIN: Duration = Duration::from_secs(3);
 
-/// The gains and manual power in force: the configuration's, then each change the loop
-/// applied through this API. (`Status` does not carry gains; see `GET /v1/config`.)
+/// The gains and manual power in force, from the loop's [`crate::status::Settings`]
+/// (`Status` does not carry gains; see `GET /v1/config`).
 #[derive(Debug, Clone, PartialEq)]
 pub struct Running {
     /// Tilt loop gains.
@@ -76,7 +76,6 @@ pub(crate) struct Inner {
     pub(crate) handles: Handles,
     pub(crate) config: Arc<Config>,
     pub(crate) access: Access,
-    pub(crate) running: Mutex<Running>,
     pub(crate) streams: Arc<Semaphore>,
     pub(crate) shutdown: CancellationToken,
     pub(crate) counters: ApiCounters,
@@ -90,18 +89,12 @@ impl AppState {
         access: Access,
         shutdown: CancellationToken,
     ) -> Self {
-        let running = Running {
-            tilt_loop: config.control.tilt_loop,
-            leg_loop: config.control.leg_loop,
-            manual_power_w: config.control.manual_power_w,
-        };
         AppState {
             inner: Arc::new(Inner {
                 handles,
                 streams: Arc::new(Semaphore::new(config.network.max_stream_clients)),
                 config,
                 access,
-                running: Mutex::new(running),
                 shutdown,
                 counters: ApiCounters::default(),
             }),
@@ -139,17 +132,17 @@ impl AppState {
         self.inner.handles.status.borrow().clone()
     }
 
-    fn running(&self) -> Running {
-        match self.inner.running.lock() {
-            Ok(g) => g.clone(),
-            Err(p) => p.into_inner().clone(),
-        }
+    /// The configuration in force now, as the loop last published it.
+    fn settings(&self) -> Arc<crate::status::Settings> {
+        self.inner.handles.settings.borrow().clone()
     }
 
-    fn update_running(&self, f: impl FnOnce(&mut Running)) {
-        match self.inner.running.lock() {
-            Ok(mut g) => f(&mut g),
-            Err(p) => f(&mut p.into_inner()),
+    fn running(&self) -> Running {
+        let c = &self.settings().control;
+        Running {
+            tilt_loop: c.tilt_loop,
+            leg_loop: c.leg_loop,
+            manual_power_w: c.manual_power_w,
         }
     }
 }

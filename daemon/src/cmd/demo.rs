@@ -113,15 +113,9 @@ fn run_demo(
             }
         }
     };
-    let rt = match tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-    {
+    let rt = match super::current_thread_runtime() {
         Ok(rt) => rt,
-        Err(e) => {
-            eprintln!("stiltd: cannot start the runtime: {e}");
-            return ExitCode::FAILURE;
-        }
+        Err(code) => return code,
     };
     let result = rt.block_on(demo::run_demo(&cfg, sink, opts));
     if let Some(b) = bar {

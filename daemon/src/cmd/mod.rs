@@ -56,3 +56,15 @@ pub fn config_errors(e: &ConfigErrors) -> ExitCode {
     eprint!("{e}");
     ExitCode::from(2)
 }
+
+/// The single-threaded tokio runtime the subcommands run on, or exit code 1 after saying
+/// why it could not be started.
+pub fn current_thread_runtime() -> Result<tokio::runtime::Runtime, ExitCode> {
+    tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .map_err(|e| {
+            eprintln!("stiltd: cannot start the runtime: {e}");
+            ExitCode::FAILURE
+        })
+}

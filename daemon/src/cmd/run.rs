@@ -4,7 +4,8 @@
 //! (unless `--no-record`) and the control loop ([`crate::runtime::start`]), then waits for
 //! SIGTERM or SIGINT (or `--duration`). On the way out the loop commands zero on every
 //! heater, the heater task writes it to the supply (confirmed or reported), the recording is
-//! closed, and the exit code is 0.
+//! closed, and the exit code is 0. After a panic anywhere (see `install_panic_guard`) the
+//! heaters are commanded to zero the same way and the exit code is 1.
 //!
 //! `--status-every S` prints one JSON status line per S seconds on stdout (for people and
 //! tests); `--summary-json` prints one JSON object at the end (counters, channels).
@@ -90,15 +91,9 @@ pub fn run_daemon(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> 
         eprintln!("stiltd: --duration {d}: allowed a positive number of seconds");
         return ExitCode::from(2);
     }
-    let rt = match tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-    {
+    let rt = match super::current_thread_runtime() {
         Ok(rt) => rt,
-        Err(e) => {
-            eprintln!("stiltd: cannot start the runtime: {e}");
-            return ExitCode::FAILURE;
-        }
+        Err(code) => return code,
     };
     match rt.block_on(serve(cfg, config_path, o)) {
         Ok(()) => ExitCode::SUCCESS,
@@ -143,18 +138,10 @@ async fn serve(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> any
     }
     let (handles, shutdown, task) = runtime::start(cfg, Box::new(backend), Box::new(sink), opts);
     // Best effort on a panic anywhere (the API thread, the recorder, the loop): command zero
-    // through the heater task and stop the loop, then let the default hook report it. Both
-    // are plain channel sends, so they work from any thread without a runtime.
-    {
-        let zero = acq.clone();
-        let stop = shutdown.clone();
-        let default = std::panic::take_hook();
-        std::panic::set_hook(Box::new(move |info| {
-            zero.command_zero_now();
-            stop.trigger();
-            default(info);
-        }));
-    }
+    // through the heater task and stop the loop, then let the default hook report it.
+    let panicked = install_panic_guard(&acq, &shutdown);
+    #[cfg(debug_assertions)]
+    debug_panic_injection();
     // The HTTP API on a thread and runtime of its own: HTTP work never queues behind or
     // ahead of the control loop.
     let api = if o.no_api {
@@ -224,6 +211,17 @@ async fn serve(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> any
         tracing::error!("could not confirm heaters at zero: check the supply");
     }
     let end = end.context("the control loop panicked (heaters commanded to zero)")?;
+    if panicked.load(std::sync::atomic::Ordering::SeqCst) {
+        // Exit 1, so that systemd's Restart=on-failure brings the service back.
+        anyhow::bail!(
+            "a panic stopped the daemon (see above); heaters {}",
+            if zeroed {
+                "confirmed at zero"
+            } else {
+                "NOT confirmed at zero"
+            }
+        );
+    }
     let end = end.map_err(|e| anyhow::anyhow!("{e}"))?;
     let last = handles.status.borrow().clone();
     if o.summary_json {
@@ -259,6 +257,48 @@ async fn serve(cfg: Config, config_path: Option<PathBuf>, o: &RunOptions) -> any
         }
     );
     Ok(())
+}
+
+/// Installs a panic hook that commands zero through the heater task and stops the loop,
+/// then runs the default hook (which prints the panic). Both actions are plain channel
+/// sends, so they work from any thread, with or without a runtime. The returned flag tells
+/// the caller, once the loop has ended, that a panic happened.
+fn install_panic_guard(
+    acq: &AcqHandle,
+    shutdown: &runtime::Shutdown,
+) -> std::sync::Arc<std::sync::atomic::AtomicBool> {
+    let flag = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+    let (zero, stop, seen) = (acq.clone(), shutdown.clone(), flag.clone());
+    let default = std::panic::take_hook();
+    std::panic::set_hook(Box::new(move |info| {
+        zero.command_zero_now();
+        stop.trigger();
+        seen.store(true, std::sync::atomic::Ordering::SeqCst);
+        default(info);
+    }));
+    flag
+}
+
+/// Debug builds only: `STILTD_DEBUG_PANIC_AFTER_S=S` panics on a thread of its own S
+/// seconds after the start, so that the system tests can drive a real panic through the
+/// guard above. Release builds do not contain this.
+#[cfg(debug_assertions)]
+fn debug_panic_injection() {
+    let Some(after) = std::env::var("STILTD_DEBUG_PANIC_AFTER_S")
+        .ok()
+        .and_then(|v| v.parse::<f64>().ok())
+        .filter(|s| s.is_finite() && *s >= 0.0)
+    else {
+        return;
+    };
+    let _ = std::thread::Builder::new()
+        .name("debug-panic".into())
+        .spawn(move || {
+            std::thread::sleep(Duration::from_secs_f64(after));
+            panic!(
+                "deliberate panic after {after} s (STILTD_DEBUG_PANIC_AFTER_S, debug builds only)"
+            );
+        });
 }
 
 fn channels_json(acq: &AcqHandle) -> serde_json::Value {

@@ -21,8 +21,8 @@ use std::path::PathBuf;
 
 pub use layout::{LAYOUT_VERSION, LayoutOptions};
 pub use reader::{
-    ControlRows, EventRows, SegmentInfo, SegmentSet, StreamKind, TiltRows, TimeWindow, export_csv,
-    find_segments,
+    ControlRows, EventRows, FlatRows, FlatWire, SegmentInfo, SegmentSet, StreamKind, TiltRows,
+    TimeWindow, export_csv, find_segments,
 };
 pub use recorder::{HealthSnapshot, Recorder, RecorderHandle, RecorderOptions, RecorderSink};
 pub use segment::{SegmentMeta, SegmentWriter, segment_file_name};

@@ -179,7 +179,7 @@ impl SegmentInfo {
     }
 }
 
-/// The `*.h5` files directly in `dir`, sorted by name.
+/// The `*.h5` files directly in `dir`, sorted by name; empty files are skipped.
 pub fn find_segments(dir: &Path) -> Result<Vec<PathBuf>, RecordError> {
     let io = |source| RecordError::Io {
         path: dir.to_path_buf(),
@@ -190,6 +190,12 @@ pub fn find_segments(dir: &Path) -> Result<Vec<PathBuf>, RecordError> {
     for e in std::fs::read_dir(dir).map_err(io)? {
         let p = e.map_err(io)?.path();
         if p.is_file() && p.extension().is_some_and(|x| x == "h5") {
+            // An empty file holds nothing to read (a segment whose creation was cut short
+            // by a crash): skipped, so that it does not stop the rest being read.
+            if std::fs::metadata(&p).is_ok_and(|m| m.len() == 0) {
+                tracing::warn!(path = %p.display(), "skipping an empty .h5 file");
+                continue;
+            }
             v.push(p);
         }
     }
@@ -260,12 +266,7 @@ impl SegmentSet {
 
     /// Tiltmeter readings in the window, in file order.
     pub fn tilt(&self, window: TimeWindow) -> TiltRows {
-        TiltRows {
-            cur: self.cursor(window, DS_TILT, None),
-            window,
-            buf: Vec::new().into_iter(),
-            done: false,
-        }
+        FlatRows::new(self.cursor(window, DS_TILT, None), window)
     }
 
     /// Control rows (with their legs) in the window, in file order.
@@ -283,12 +284,7 @@ impl SegmentSet {
 
     /// Events in the window, in file order.
     pub fn events(&self, window: TimeWindow) -> EventRows {
-        EventRows {
-            cur: self.cursor(window, DS_EVENTS, None),
-            window,
-            buf: Vec::new().into_iter(),
-            done: false,
-        }
+        FlatRows::new(self.cursor(window, DS_EVENTS, None), window)
     }
 }
 
@@ -444,22 +440,70 @@ impl Cursor {
     }
 }
 
-/// Tilt rows of a [`SegmentSet`]; see [`SegmentSet::tilt`]. Stops after the first error.
+/// A stored row that becomes one domain row by itself (tilt samples, events; control rows
+/// also need their legs' rows, see [`ControlRows`]).
+pub trait FlatWire: H5Type + Sized {
+    /// The domain row.
+    type Row;
+    /// UTC of the row, ns since the Unix epoch.
+    fn utc_ns(&self) -> i64;
+    /// The domain row, or why the stored row is not valid.
+    fn decode(&self) -> Result<Self::Row, RecordError>;
+}
+
+impl FlatWire for TiltWire {
+    type Row = TiltSample;
+    fn utc_ns(&self) -> i64 {
+        self.t_utc_ns
+    }
+    fn decode(&self) -> Result<TiltSample, RecordError> {
+        self.to_sample()
+    }
+}
+
+impl FlatWire for EventWire {
+    type Row = EventRow;
+    fn utc_ns(&self) -> i64 {
+        self.t_utc_ns
+    }
+    fn decode(&self) -> Result<EventRow, RecordError> {
+        self.to_event()
+    }
+}
+
+/// Rows of one flat dataset of a [`SegmentSet`], read a chunk at a time. Stops after the
+/// first error.
 #[derive(Debug)]
-pub struct TiltRows {
+pub struct FlatRows<W> {
     cur: Cursor,
     window: TimeWindow,
-    buf: std::vec::IntoIter<TiltWire>,
+    buf: std::vec::IntoIter<W>,
     done: bool,
 }
 
-impl Iterator for TiltRows {
-    type Item = Result<TiltSample, RecordError>;
+/// Tilt rows of a [`SegmentSet`]; see [`SegmentSet::tilt`].
+pub type TiltRows = FlatRows<TiltWire>;
+/// Events of a [`SegmentSet`]; see [`SegmentSet::events`].
+pub type EventRows = FlatRows<EventWire>;
+
+impl<W> FlatRows<W> {
+    fn new(cur: Cursor, window: TimeWindow) -> Self {
+        FlatRows {
+            cur,
+            window,
+            buf: Vec::new().into_iter(),
+            done: false,
+        }
+    }
+}
+
+impl<W: FlatWire> Iterator for FlatRows<W> {
+    type Item = Result<W::Row, RecordError>;
     fn next(&mut self) -> Option<Self::Item> {
         loop {
             for w in self.buf.by_ref() {
-                if self.window.contains(w.t_utc_ns) {
-                    let r = w.to_sample();
+                if self.window.contains(w.utc_ns()) {
+                    let r = w.decode();
                     self.done |= r.is_err();
                     return Some(r);
                 }
@@ -476,7 +520,7 @@ impl Iterator for TiltRows {
                     self.done = true;
                     return Some(Err(e));
                 }
-                Some(Ok((a, b))) => match self.cur.read::<TiltWire>(a, b) {
+                Some(Ok((a, b))) => match self.cur.read::<W>(a, b) {
                     Ok(v) => self.buf = v.into_iter(),
                     Err(e) => {
                         self.done = true;
@@ -542,50 +586,6 @@ impl Iterator for ControlRows {
                     self.done = true;
                     return Some(Err(e));
                 }
-            }
-        }
-    }
-}
-
-/// Events of a [`SegmentSet`]; see [`SegmentSet::events`]. Stops after the first error.
-#[derive(Debug)]
-pub struct EventRows {
-    cur: Cursor,
-    window: TimeWindow,
-    buf: std::vec::IntoIter<EventWire>,
-    done: bool,
-}
-
-impl Iterator for EventRows {
-    type Item = Result<EventRow, RecordError>;
-    fn next(&mut self) -> Option<Self::Item> {
-        loop {
-            for w in self.buf.by_ref() {
-                if self.window.contains(w.t_utc_ns) {
-                    let r = w.to_event();
-                    self.done |= r.is_err();
-                    return Some(r);
-                }
-            }
-            if self.done {
-                return None;
-            }
-            match self.cur.advance() {
-                None => {
-                    self.done = true;
-                    return None;
-                }
-                Some(Err(e)) => {
-                    self.done = true;
-                    return Some(Err(e));
-                }
-                Some(Ok((a, b))) => match self.cur.read::<EventWire>(a, b) {
-                    Ok(v) => self.buf = v.into_iter(),
-                    Err(e) => {
-                        self.done = true;
-                        return Some(Err(e));
-                    }
-                },
             }
         }
     }

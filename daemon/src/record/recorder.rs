@@ -966,6 +966,11 @@ impl Writer {
             let path = opts_path(&self.opts.dir, &meta.run_id, idx);
             match SegmentWriter::create(&path, &meta, &self.opts.layout) {
                 Err(RecordError::Exists(_)) => continue,
+                Err(e) => {
+                    // Nothing is left of a failed create: the next try uses the same name.
+                    self.next_index = idx;
+                    return Err(e);
+                }
                 r => return r,
             }
         }
@@ -1085,6 +1090,13 @@ impl Writer {
                 }
                 if let Err(e) = self.flush() {
                     self.fail(e);
+                } else {
+                    // The rows held during the outage are written: give their room back,
+                    // so that an outage leaves the memory where it was.
+                    let l = self.opts.layout;
+                    self.pend.tilt.shrink_to(l.tilt_chunk_rows);
+                    self.pend.control.shrink_to(l.control_chunk_rows);
+                    self.pend.events.shrink_to(l.event_chunk_rows);
                 }
             }
             Err(e) => {

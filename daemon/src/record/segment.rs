@@ -75,6 +75,21 @@ pub struct SegmentWriter {
     leg_mismatch: Option<String>,
 }
 
+/// Appends `rows` to a one-dimensional dataset that holds `n` rows: one resize, one write
+/// and one dataset flush. Returns the new row count.
+fn append_rows<W: H5Type>(
+    ds: &Dataset,
+    n: usize,
+    rows: &[W],
+    e: &impl Fn(hdf5::Error) -> RecordError,
+) -> Result<usize, RecordError> {
+    let b = n + rows.len();
+    ds.resize(b).map_err(e)?;
+    ds.write_slice(rows, n..b).map_err(e)?;
+    ds.flush().map_err(e)?;
+    Ok(b)
+}
+
 fn h5(path: &Path, what: &str) -> impl Fn(hdf5::Error) -> RecordError + use<> {
     let path = path.to_path_buf();
     let what = what.to_owned();
@@ -116,12 +131,36 @@ impl SegmentWriter {
         if path.exists() {
             return Err(RecordError::Exists(path.to_path_buf()));
         }
-        let legs = meta.leg_names.len().max(1);
-        let e = |w: &str| h5(path, w);
-        let file = File::with_options()
+        let file = match File::with_options()
             .with_fapl(|p| p.libver_latest())
             .create_excl(path)
-            .map_err(e("create the file"))?;
+        {
+            Ok(f) => f,
+            Err(err) => {
+                // A full disk fails the superblock write after the file was made: the
+                // empty file left would trip every reader of the folder. Removed only
+                // when empty (an exclusive create that lost a race leaves another's file).
+                if std::fs::metadata(path).is_ok_and(|m| m.len() == 0) {
+                    let _ = std::fs::remove_file(path);
+                }
+                return Err(h5(path, "create the file")(err));
+            }
+        };
+        // This call made the file: if it cannot be completed, it holds no rows and goes.
+        Self::complete(file, path, meta, opts).inspect_err(|_| {
+            let _ = std::fs::remove_file(path);
+        })
+    }
+
+    /// The rest of [`SegmentWriter::create`], on the file it has just made.
+    fn complete(
+        file: File,
+        path: &Path,
+        meta: &SegmentMeta,
+        opts: &LayoutOptions,
+    ) -> Result<Self, RecordError> {
+        let legs = meta.leg_names.len().max(1);
+        let e = |w: &str| h5(path, w);
         let root: &Location = &file;
         (|| -> hdf5::Result<()> {
             attr_num(root, "layout_version", LAYOUT_VERSION)?;
@@ -287,12 +326,8 @@ impl SegmentWriter {
         if rows.is_empty() {
             return Ok(());
         }
-        let (a, b) = (self.n_tilt, self.n_tilt + rows.len());
         let e = h5(&self.path, "append to tilt");
-        self.tilt.resize(b).map_err(&e)?;
-        self.tilt.write_slice(rows, a..b).map_err(&e)?;
-        self.tilt.flush().map_err(&e)?;
-        self.n_tilt = b;
+        self.n_tilt = append_rows(&self.tilt, self.n_tilt, rows, &e)?;
         for r in rows {
             self.see_time(r.t_utc_ns);
         }
@@ -344,10 +379,7 @@ impl SegmentWriter {
         self.legs_ds.resize((b, self.legs)).map_err(&e)?;
         self.legs_ds.write_slice(view, (a..b, ..)).map_err(&e)?;
         self.legs_ds.flush().map_err(&e)?;
-        self.control.resize(b).map_err(&e)?;
-        self.control.write_slice(rows, a..b).map_err(&e)?;
-        self.control.flush().map_err(&e)?;
-        self.n_control = b;
+        self.n_control = append_rows(&self.control, a, rows, &e)?;
         for r in rows {
             self.see_time(r.t_utc_ns);
         }
@@ -362,21 +394,16 @@ impl SegmentWriter {
         let mut buf = std::mem::take(&mut self.event_buf);
         buf.clear();
         buf.extend(rows.iter().map(EventWire::from));
-        let (a, b) = (self.n_events, self.n_events + rows.len());
         let e = h5(&self.path, "append to events");
-        let res = (|| {
-            self.events.resize(b).map_err(&e)?;
-            self.events.write_slice(&buf, a..b).map_err(&e)?;
-            self.events.flush().map_err(&e)
-        })();
-        if res.is_ok() {
-            self.n_events = b;
+        let res = append_rows(&self.events, self.n_events, &buf, &e);
+        if let Ok(n) = res {
+            self.n_events = n;
             for r in &buf {
                 self.see_time(r.t_utc_ns);
             }
         }
         self.event_buf = buf;
-        res
+        res.map(|_| ())
     }
 
     fn write_state(&self, state: u8, dropped_rows_run: u64) -> Result<(), RecordError> {

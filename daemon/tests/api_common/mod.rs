@@ -14,7 +14,7 @@ use stilt_daemon::api::{AppState, app};
 use stilt_daemon::rows::{ControlRow, LegRow, LoopTerms, Quality, Stamp};
 use stilt_daemon::status::{
     AlarmStatus, Applied, AxisStatus, ChannelStatus, ControlRequest, Handles, LegStatus,
-    LoopTiming, RecordingStatus, Refused, Request, Status,
+    LoopTiming, RecordingStatus, Refused, Request, Settings, Status,
 };
 use tokio::sync::{broadcast, mpsc, watch};
 use tokio_util::sync::CancellationToken;
@@ -202,6 +202,9 @@ pub fn fake_loop(cfg: &Config, behaviour: Behaviour, row_capacity: usize) -> Fak
     let received = Arc::new(Mutex::new(Vec::new()));
     let rec = received.clone();
     let st = status_tx.clone();
+    let (settings_tx, settings_rx) = watch::channel(Arc::new(Settings::from_config(Arc::new(
+        cfg.clone(),
+    ))));
     let max_power = cfg
         .legs
         .iter()
@@ -219,6 +222,17 @@ pub fn fake_loop(cfg: &Config, behaviour: Behaviour, row_capacity: usize) -> Fak
             let answer = apply(&mut s, &r.change, &r.who, max_power);
             if answer.is_ok() {
                 st.send_replace(Arc::new(s));
+                // As the runtime does: the settings in force, published before the answer.
+                settings_tx.send_modify(|cur| {
+                    let mut n = (**cur).clone();
+                    match &r.change {
+                        ControlRequest::SetTiltGains(g) => n.control.tilt_loop = *g,
+                        ControlRequest::SetLegGains(g) => n.control.leg_loop = *g,
+                        ControlRequest::SetManualPower(p) => n.control.manual_power_w = *p,
+                        _ => {}
+                    }
+                    *cur = Arc::new(n);
+                });
             }
             let _ = r.reply.send(answer);
         }
@@ -226,6 +240,7 @@ pub fn fake_loop(cfg: &Config, behaviour: Behaviour, row_capacity: usize) -> Fak
     Fake {
         handles: Handles {
             status: status_rx,
+            settings: settings_rx,
             rows: rows_tx.clone(),
             requests: req_tx,
         },

@@ -242,3 +242,20 @@ pub fn assert_tilt_prefix(rows: &[TiltSample], what: &str) {
         );
     }
 }
+
+/// Ignores SIGXFSZ and sets the soft file-size limit (the hard limit stays).
+#[allow(unsafe_code)]
+pub fn set_file_size_limit(bytes: Option<u64>) {
+    // SAFETY: plain libc calls on this process with valid arguments; `signal` installs
+    // SIG_IGN (no handler code runs), and `lim` is a valid, initialised rlimit.
+    unsafe {
+        libc::signal(libc::SIGXFSZ, libc::SIG_IGN);
+        let mut lim = libc::rlimit {
+            rlim_cur: 0,
+            rlim_max: 0,
+        };
+        assert_eq!(libc::getrlimit(libc::RLIMIT_FSIZE, &mut lim), 0);
+        lim.rlim_cur = bytes.map_or(lim.rlim_max, |b| b as libc::rlim_t);
+        assert_eq!(libc::setrlimit(libc::RLIMIT_FSIZE, &lim), 0);
+    }
+}
