@@ -1,5 +1,7 @@
 //! `stiltd tune`'s engine: step and relay tests of one loop on the simulated stage, in
-//! virtual time, and the model fit and tuning proposals drawn from them.
+//! virtual time, and the model fit and tuning proposals drawn from them. The same tests
+//! through a running daemon's HTTP API are in [`remote`]; both paths hand a
+//! [`StepRecord`] to the one [`analyse_with`].
 //!
 //! Main items:
 //! - [`Target`]: which loop — a leg's temperature loop (plant: heater power W → leg
@@ -11,7 +13,10 @@
 //!   test with bounded amplitude and hysteresis;
 //! - [`analyse`] → [`TuneResult`]: FOPDT fit (Levenberg–Marquardt seeded by Smith's two-point
 //!   estimate), SIMC and Ziegler–Nichols proposals, each with its rule named, the relay's
-//!   Ku/Pu, and the `[control.*_loop]` TOML lines to paste.
+//!   Ku/Pu, and the `[control.*_loop]` TOML lines to paste; [`AnalysisContext`] says what
+//!   the analysis needs to know about the loop (its name, control period, gains in force),
+//!   so that the simulated and the daemon paths share it;
+//! - [`leg_step_limits`]: how far a heater step may go from a power inside every limit.
 //!
 //! The world here is the simulated stage ([`SimStage`]) driven by the daemon's own
 //! [`Controller`], stepped at the tiltmeter rate with one control tick per control period,
@@ -32,6 +37,8 @@ use crate::analysis::tuning::{
 };
 use crate::core::cascade::{Controller, Inputs};
 use crate::core::geometry::Geometry;
+
+pub mod remote;
 
 /// Which loop to test.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
@@ -328,6 +335,22 @@ impl World {
     }
 }
 
+/// How far a heater step may go from `p0` W on every one of `n_legs` heaters at once
+/// (`n_legs = 1` for one heater with the others held elsewhere): returns (down, up), both ≥ 0,
+/// keeping each heater within 0 … `heater_max_w` and the sum within `total_max_w`
+/// (`others_w` is what the other heaters draw meanwhile).
+pub fn leg_step_limits(
+    p0: f64,
+    heater_max_w: f64,
+    stepped: usize,
+    others_w: f64,
+    total_max_w: f64,
+) -> (f64, f64) {
+    let n = stepped.max(1) as f64;
+    let up = (heater_max_w - p0).min((total_max_w - others_w - n * p0) / n);
+    (p0.max(0.0), up.max(0.0))
+}
+
 /// The default step size and the checks that keep it inside every limit.
 fn checked_step(cfg: &Config, target: Target, step: Option<f64>) -> Result<f64, TuneError> {
     match target {
@@ -338,9 +361,14 @@ fn checked_step(cfg: &Config, target: Target, step: Option<f64>) -> Result<f64, 
                 .ok_or_else(|| TuneError::Options(format!("no leg {}", i + 1)))?;
             let n = cfg.legs.len() as f64;
             let p0 = cfg.control.manual_power_w.min(leg.heater_max_power_w);
-            let total = p0 * n;
-            let up = (leg.heater_max_power_w - p0).min(cfg.limits.max_total_power_w - total);
-            let down = p0;
+            // One heater stepped, the others held at p0.
+            let (down, up) = leg_step_limits(
+                p0,
+                leg.heater_max_power_w,
+                1,
+                p0 * (n - 1.0),
+                cfg.limits.max_total_power_w,
+            );
             let d = step.unwrap_or(0.25 * up.max(0.0));
             if !d.is_finite() || d == 0.0 || d > up + 1e-12 || -d > down + 1e-12 {
                 return Err(TuneError::Options(format!(
@@ -372,10 +400,19 @@ fn checked_step(cfg: &Config, target: Target, step: Option<f64>) -> Result<f64, 
 }
 
 fn check_durations(o: &StepOptions) -> Result<(), TuneError> {
+    check_durations_min(o, 60.0, 300.0)
+}
+
+/// The step test's durations, with the shortest baseline and record allowed.
+pub(crate) fn check_durations_min(
+    o: &StepOptions,
+    min_baseline_s: f64,
+    min_record_s: f64,
+) -> Result<(), TuneError> {
     for (name, v, min) in [
         ("warm-up", o.warmup_s, 0.0),
-        ("baseline", o.baseline_s, 60.0),
-        ("record", o.record_s, 300.0),
+        ("baseline", o.baseline_s, min_baseline_s),
+        ("record", o.record_s, min_record_s),
     ] {
         if !(v.is_finite() && v >= min && v <= 30.0 * 86_400.0) {
             return Err(TuneError::Options(format!(
@@ -416,6 +453,23 @@ fn remove_baseline_drift(t: &[f64], y: &mut [f64], t_step: f64) -> f64 {
         *yi -= fit.slope * (ti - t_step);
     }
     fit.slope
+}
+
+/// Drops the samples with no usable output and removes the baseline's straight line
+/// (samples before `t_step`); returns times, outputs and the slope removed.
+pub(crate) fn clean_record(
+    time_s: &[f64],
+    output: &[f64],
+    t_step: f64,
+) -> (Vec<f64>, Vec<f64>, f64) {
+    // Samples with no usable output cannot be fitted: drop them.
+    let keep: Vec<usize> = (0..output.len().min(time_s.len()))
+        .filter(|&i| output[i].is_finite() && time_s[i].is_finite())
+        .collect();
+    let t: Vec<f64> = keep.iter().map(|&i| time_s[i]).collect();
+    let mut y: Vec<f64> = keep.iter().map(|&i| output[i]).collect();
+    let drift = remove_baseline_drift(&t, &mut y, t_step);
+    (t, y, drift)
 }
 
 /// Runs a step test (see the module doc). `progress(t, total)` is called now and then
@@ -481,13 +535,7 @@ pub fn run_step_test(
             )));
         }
     }
-    // Samples with no usable output cannot be fitted: drop them.
-    let keep: Vec<usize> = (0..output.len())
-        .filter(|&i| output[i].is_finite())
-        .collect();
-    let time_s: Vec<f64> = keep.iter().map(|&i| time_s[i]).collect();
-    let mut output: Vec<f64> = keep.iter().map(|&i| output[i]).collect();
-    let drift = remove_baseline_drift(&time_s, &mut output, t_step + cfg.control.period_s());
+    let (time_s, output, drift) = clean_record(&time_s, &output, t_step + cfg.control.period_s());
     let (iu, ou) = opts.target.units();
     // In manual mode the leg limits are the test's own: count only limits in auto modes.
     let limit_ticks = match opts.target {
@@ -611,6 +659,9 @@ pub fn run_relay_test(
 /// One proposal as printed and written to JSON.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct NamedGains {
+    /// Short name for `--apply`: `simc`, `zn-p`, `zn-pi`, `zn-pid`, `relay-p`, `relay-pi`,
+    /// `relay-pid` (`current` for the gains in force).
+    pub key: &'static str,
     /// The rule and its source.
     pub rule: String,
     /// Proportional gain Kc (output unit of the controller per unit of error).
@@ -622,8 +673,9 @@ pub struct NamedGains {
 }
 
 impl NamedGains {
-    fn from_proposal(p: &Proposal, note: &str) -> Self {
+    fn from_proposal(p: &Proposal, note: &str, key: &'static str) -> Self {
         NamedGains {
+            key,
             rule: format!("{}{note}", p.rule),
             kp: p.gains.kc,
             ti_s: p.gains.ti_s.is_finite().then_some(p.gains.ti_s),
@@ -683,6 +735,8 @@ pub struct RelayReport {
 pub struct TuneResult {
     /// The loop, in words.
     pub loop_name: String,
+    /// Where the test ran, in words.
+    pub world: String,
     /// The loop.
     pub target: Target,
     /// Plant input and output units.
@@ -726,7 +780,11 @@ fn quality_name(q: FitQuality) -> &'static str {
 /// The recommended proposal (SIMC PI) as `LoopGains`, keeping the configuration's other
 /// settings (setpoint weight, filter, tracking, slew).
 pub fn recommended_gains(r: &TuneResult, current: &LoopGains) -> LoopGains {
-    let p = &r.proposals[0];
+    gains_of(&r.proposals[0], current)
+}
+
+/// A proposal as `LoopGains`, keeping `current`'s other settings.
+pub fn gains_of(p: &NamedGains, current: &LoopGains) -> LoopGains {
     LoopGains {
         kp: p.kp,
         ti_s: p.ti_s,
@@ -742,9 +800,47 @@ fn current_gains(cfg: &Config, target: Target) -> LoopGains {
     }
 }
 
-/// Fits the step record and proposes gains; adds the relay estimate when given.
+/// What the analysis needs to know about the loop besides its record.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AnalysisContext {
+    /// The loop, in words.
+    pub loop_name: String,
+    /// Where the test ran, in words (the header of the printout).
+    pub world: String,
+    /// The control period, s (SIMC's τc is at least one period).
+    pub control_period_s: f64,
+    /// The gains in force for this loop.
+    pub current: LoopGains,
+    /// Where those gains come from, in words.
+    pub current_source: String,
+}
+
+impl AnalysisContext {
+    /// The context of a test on the simulated stage of `cfg`.
+    pub fn simulated(cfg: &Config, target: Target) -> Self {
+        AnalysisContext {
+            loop_name: target.describe(cfg),
+            world: "simulated stage, virtual time".into(),
+            control_period_s: cfg.control.period_s(),
+            current: current_gains(cfg, target),
+            current_source: "in force (configuration)".into(),
+        }
+    }
+}
+
+/// Fits the step record and proposes gains; adds the relay estimate when given. The
+/// simulated path's shorthand for [`analyse_with`].
 pub fn analyse(
     cfg: &Config,
+    rec: &StepRecord,
+    relay: Option<&RelayRecord>,
+) -> Result<TuneResult, TuneError> {
+    analyse_with(&AnalysisContext::simulated(cfg, rec.target), rec, relay)
+}
+
+/// Fits the step record and proposes gains; adds the relay estimate when given.
+pub fn analyse_with(
+    ctx: &AnalysisContext,
     rec: &StepRecord,
     relay: Option<&RelayRecord>,
 ) -> Result<TuneResult, TuneError> {
@@ -757,19 +853,25 @@ pub fn analyse(
     let m = fit.model;
     // SIMC's "tight control" τc = θ, but not below one control period: a digital loop adds
     // about that much delay of its own (common practice).
-    let period = cfg.control.period_s();
+    let period = ctx.control_period_s;
     let simc = if m.dead_time_s >= period {
-        NamedGains::from_proposal(&simc_pi(&m, None)?, "")
+        NamedGains::from_proposal(&simc_pi(&m, None)?, "", "simc")
     } else {
         NamedGains::from_proposal(
             &simc_pi(&m, Some(period))?,
             &format!(" = one control period, {period} s (theta < period)"),
+            "simc",
         )
     };
     let mut proposals = vec![simc];
     match ziegler_nichols_step(&m) {
-        Ok(zn) => proposals.extend(zn.iter().map(|p| NamedGains::from_proposal(p, ""))),
+        Ok(zn) => proposals.extend(
+            zn.iter()
+                .zip(["zn-p", "zn-pi", "zn-pid"])
+                .map(|(p, k)| NamedGains::from_proposal(p, "", k)),
+        ),
         Err(e) => proposals.push(NamedGains {
+            key: "zn",
             rule: format!("Ziegler–Nichols step response (1942): not applicable: {e}"),
             kp: f64::NAN,
             ti_s: None,
@@ -782,7 +884,8 @@ pub fn analyse(
             let zn = ziegler_nichols_ultimate(est.ultimate_gain, est.ultimate_period_s)?;
             proposals.extend(
                 zn.iter()
-                    .map(|p| NamedGains::from_proposal(p, ", from the relay test")),
+                    .zip(["relay-p", "relay-pi", "relay-pid"])
+                    .map(|(p, k)| NamedGains::from_proposal(p, ", from the relay test", k)),
             );
             Some(RelayReport {
                 amplitude: rr.amplitude,
@@ -796,15 +899,17 @@ pub fn analyse(
         }
         None => None,
     };
-    let cur = current_gains(cfg, rec.target);
+    let cur = ctx.current;
     let current = NamedGains {
-        rule: "in force (configuration)".into(),
+        key: "current",
+        rule: ctx.current_source.clone(),
         kp: cur.kp,
         ti_s: cur.ti_s,
         td_s: cur.td_s,
     };
     let mut result = TuneResult {
-        loop_name: rec_name(cfg, rec.target),
+        loop_name: ctx.loop_name.clone(),
+        world: ctx.world.clone(),
         target: rec.target,
         units: rec.target.units(),
         input_before: rec.input_before,
@@ -841,14 +946,35 @@ pub fn analyse(
     Ok(result)
 }
 
-fn rec_name(cfg: &Config, t: Target) -> String {
-    t.describe(cfg)
+/// The proposal called `key` (see [`NamedGains::key`]), or an error listing the keys.
+pub fn find_proposal<'a>(r: &'a TuneResult, key: &str) -> Result<&'a NamedGains, String> {
+    let usable = |p: &&NamedGains| p.kp.is_finite();
+    r.proposals
+        .iter()
+        .filter(usable)
+        .find(|p| p.key == key)
+        .ok_or_else(|| {
+            let keys: Vec<&str> = r.proposals.iter().filter(usable).map(|p| p.key).collect();
+            format!(
+                "no proposal `{key}` in this result; choose one of: {}{}",
+                keys.join(", "),
+                if r.relay.is_none() {
+                    " (the relay-* rules need --relay)"
+                } else {
+                    ""
+                }
+            )
+        })
 }
 
 /// The recommended gains as the configuration's TOML lines.
 fn toml_lines(r: &TuneResult, current: &LoopGains) -> String {
-    let g = recommended_gains(r, current);
-    let (table, kp_key) = match r.target {
+    toml_for(r.target, &gains_of(&r.proposals[0], current))
+}
+
+/// `g` as the configuration's TOML lines for `target`'s loop.
+pub fn toml_for(target: Target, g: &LoopGains) -> String {
+    let (table, kp_key) = match target {
         Target::Leg(_) => ("control.leg_loop", "kp_w_per_k"),
         Target::TiltAxis(_) => ("control.tilt_loop", "kp_urad_per_urad"),
     };
@@ -875,11 +1001,7 @@ pub fn render(r: &TuneResult) -> String {
     use std::fmt::Write;
     let (iu, ou) = r.units;
     let mut o = String::new();
-    let _ = writeln!(
-        o,
-        "stiltd tune — {} (simulated stage, virtual time)",
-        r.loop_name
-    );
+    let _ = writeln!(o, "stiltd tune — {} ({})", r.loop_name, r.world);
     let _ = writeln!(
         o,
         "step: {} {iu} → {} {iu} (Δ = {} {iu}); {} samples; baseline drift removed {:.3e} {ou}/s",
@@ -982,11 +1104,11 @@ pub fn render(r: &TuneResult) -> String {
     let _ = writeln!(o);
     let _ = writeln!(
         o,
-        "Recommended: the SIMC PI line. There is no API to apply gains to a running daemon yet;"
+        "Recommended: the SIMC PI line (`--apply simc` with `--daemon` puts it into a running daemon);"
     );
     let _ = writeln!(
         o,
-        "paste these lines into the configuration (they replace the keys shown):"
+        "to keep it across restarts, paste these lines into the configuration (they replace the keys shown):"
     );
     let _ = writeln!(o);
     o.push_str(&r.toml);

@@ -232,6 +232,29 @@ fn command_line_prints_json_and_refuses_bad_loops() {
     let table = String::from_utf8_lossy(&o.stdout);
     assert!(table.contains("Ziegler–Nichols") && table.contains("[control.tilt_loop]"));
     assert!(table.contains("paste these lines"));
+    // On the simulated stage `--apply` applies nothing and says so, with the rule's lines.
+    let o = run(&["tune", "--loop", "leg:A", "--apply", "zn-pi"]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("nothing was applied") && err.contains("[control.leg_loop]"),
+        "{err}"
+    );
+    let o = run(&["tune", "--loop", "leg:A", "--apply", "relay-pi"]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("need --relay"));
+    // Through a daemon: a tilt axis is refused before connecting, an absent daemon is
+    // named (port 9 on loopback: nothing listens there in the test environment).
+    let o = run(&["tune", "--daemon", "http://127.0.0.1:9", "--loop", "tilt:x"]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("per-leg setpoint offsets"));
+    let o = run(&["tune", "--daemon", "http://127.0.0.1:9", "--loop", "leg:A"]);
+    assert_eq!(o.status.code(), Some(1));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("cannot connect") && err.contains("127.0.0.1:9"),
+        "{err}"
+    );
     for bad in [
         &["tune", "--loop", "leg:Q"][..],
         &["tune", "--loop", "leg:A", "--step", "3"],

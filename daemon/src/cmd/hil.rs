@@ -6,7 +6,9 @@
 //! then runs exactly what `stiltd run` runs, with the built-in HIL stage
 //! (`config/examples/hil/stage.toml`) or `--config`, and the port map the simulator just
 //! wrote. When the daemon stops (SIGTERM, Ctrl-C or `--duration`) the simulator is stopped
-//! too, and its one-line JSON summary is passed through on stderr.
+//! too, and its one-line JSON summary is passed through on stderr. `--sim-speed N` runs
+//! the simulated stage N times faster than the wall clock (a step test of a leg, whose
+//! time constant is tens of minutes, then takes seconds).
 
 use std::io::BufRead;
 use std::path::{Path, PathBuf};
@@ -28,6 +30,10 @@ pub struct HilArgs {
     /// The simulator binary (default: `stilt-hil-sim` beside `stiltd`).
     #[arg(long, value_name = "FILE")]
     pub sim: Option<PathBuf>,
+    /// Simulated seconds per wall-clock second (the simulator's `--speed`): the stage's
+    /// time constants shrink by this factor as the daemon sees them (above 0, at most 100000).
+    #[arg(long, value_name = "N", default_value_t = 1.0)]
+    pub sim_speed: f64,
     /// Folder for the port map and the simulator's log (default: a fresh one under the
     /// system's temporary folder).
     #[arg(long, value_name = "DIR")]
@@ -52,6 +58,13 @@ pub fn run(a: &HilArgs) -> ExitCode {
             return ExitCode::FAILURE;
         }
     };
+    if !(a.sim_speed.is_finite() && a.sim_speed > 0.0 && a.sim_speed <= 100_000.0) {
+        eprintln!(
+            "stiltd: --sim-speed {}: allowed a factor above 0 and at most 100000",
+            a.sim_speed
+        );
+        return ExitCode::from(2);
+    }
     let dir = a
         .work_dir
         .clone()
@@ -62,7 +75,7 @@ pub fn run(a: &HilArgs) -> ExitCode {
     }
     let map = dir.join("hil-ports.toml");
     let _ = std::fs::remove_file(&map);
-    let mut child = match start_sim(&sim, &map, a.faults.as_deref(), &dir) {
+    let mut child = match start_sim(&sim, &map, a.faults.as_deref(), a.sim_speed, &dir) {
         Ok(c) => c,
         Err(e) => {
             eprintln!("stiltd: {e}");
@@ -110,7 +123,13 @@ struct Sim {
     relay: Option<std::thread::JoinHandle<()>>,
 }
 
-fn start_sim(sim: &Path, map: &Path, faults: Option<&Path>, dir: &Path) -> Result<Sim, String> {
+fn start_sim(
+    sim: &Path,
+    map: &Path,
+    faults: Option<&Path>,
+    speed: f64,
+    dir: &Path,
+) -> Result<Sim, String> {
     let log = std::fs::File::create(dir.join("stilt-hil-sim.log")).map_err(|e| {
         format!(
             "cannot create the simulator's log in {}: {e}",
@@ -119,6 +138,7 @@ fn start_sim(sim: &Path, map: &Path, faults: Option<&Path>, dir: &Path) -> Resul
     })?;
     let mut c = Command::new(sim);
     c.arg("--port-map").arg(map);
+    c.arg("--speed").arg(speed.to_string());
     if let Some(f) = faults {
         c.arg("--faults").arg(f);
     }

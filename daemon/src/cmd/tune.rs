@@ -1,37 +1,75 @@
 //! `stiltd tune`: a step test (and optionally a relay test) of one loop on the simulated
-//! stage, with the model fit and the tuning rules' proposals. The engine is
-//! [`crate::tune`].
+//! stage, or a leg step test through a running daemon (`--daemon URL`), with the model
+//! fit and the tuning rules' proposals; `--apply RULE` puts a proposal into the daemon
+//! after a `[y/N]` confirmation. The engines are [`crate::tune`] (simulated) and
+//! [`crate::tune::remote`] (through the API); the analysis is shared.
 
 use std::io::IsTerminal;
 use std::path::PathBuf;
 use std::process::ExitCode;
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::Duration;
 
 use super::config_errors;
-use crate::tune::{self, RelayOptions, StepOptions, Target};
+use crate::api::client::Client;
+use crate::tune::remote::{self, RemoteOptions};
+use crate::tune::{self, RelayOptions, StepOptions, Target, TuneResult};
 
 /// Arguments of `stiltd tune`.
 #[derive(clap::Args, Debug)]
 pub struct TuneArgs {
-    /// The loop: `tilt:x`, `tilt:y`, or `leg:NAME` / `leg:N` (1-based).
+    /// The loop: `tilt:x`, `tilt:y`, or `leg:NAME` / `leg:N` (1-based); with --daemon
+    /// a leg only.
     #[arg(long = "loop", value_name = "LOOP", default_value = "tilt:x")]
     pub target: String,
     /// A scenario of your own (TOML); default: the built-in demo scenario.
-    #[arg(long, short)]
+    #[arg(long, short, conflicts_with = "daemon")]
     pub config: Option<PathBuf>,
+    /// Test through the running daemon at this address (e.g. http://127.0.0.1:8040)
+    /// instead of on the simulated stage: its mode, manual power and setpoints are read
+    /// first and put back at the end, whatever happens.
+    #[arg(long, value_name = "URL")]
+    pub daemon: Option<String>,
+    /// With --daemon: a file holding the access token (else STILT_TOKEN).
+    #[arg(long, value_name = "FILE", requires = "daemon")]
+    pub token_file: Option<PathBuf>,
+    /// With --daemon: PEM file of the certificate authority to trust for https://.
+    #[arg(long, value_name = "PEM", requires = "daemon")]
+    pub ca_file: Option<PathBuf>,
     /// Step size in the plant's input unit (W for a leg, µrad of tilt correction for an
-    /// axis); default: a quarter of the heater headroom, or 2 µrad. Checked against every limit.
+    /// axis); default: a quarter of the heater headroom, or 2 µrad. Checked against every
+    /// limit. With --daemon it is a step of the manual power of every heater.
     #[arg(long, allow_negative_numbers = true)]
     pub step: Option<f64>,
-    /// Warm-up from a cold start before the baseline.
+    /// Warm-up from a cold start before the baseline (simulated stage).
     #[arg(long, default_value = "3h", value_parser = crate::demo::parse_duration_s)]
     pub warmup: f64,
+    /// With --daemon: hold the heaters at their present power this long before the
+    /// baseline (daemon time). Give the stage time to become steady: the baseline's
+    /// straight line is removed as drift, and a leg still warming biases the fit.
+    #[arg(long, default_value = "10m", value_parser = crate::demo::parse_duration_s)]
+    pub settle: f64,
+    /// With --daemon: at most one progress line on stderr this often, seconds.
+    #[arg(long, value_name = "SECONDS", default_value_t = 10.0)]
+    pub progress_every: f64,
+    /// After the proposals, apply this one: `simc`, `zn-pi`, `zn-pid`, `relay-pi`,
+    /// `relay-pid`. With --daemon it asks `[y/N]` on the terminal, then PUTs the gains;
+    /// on the simulated stage nothing is applied and its TOML lines are printed.
+    #[arg(long, value_name = "RULE")]
+    pub apply: Option<String>,
+    /// Apply without asking (needed when standard input is not a terminal).
+    #[arg(long, requires = "apply")]
+    pub yes: bool,
     /// Baseline before the step; default 30m for a leg, 10m for a tilt axis.
     #[arg(long, value_parser = crate::demo::parse_duration_s)]
     pub baseline: Option<f64>,
     /// Record after the step; default 3h for a leg, 30m for a tilt axis.
     #[arg(long, value_parser = crate::demo::parse_duration_s)]
     pub record: Option<f64>,
-    /// Also run an Åström–Hägglund relay test (bounded amplitude) for Ku and Pu.
+    /// Also run an Åström–Hägglund relay test (bounded amplitude) for Ku and Pu; with
+    /// --daemon after the step test, switching the manual power between p0 ± amplitude
+    /// (so the heaters must be held above the amplitude), at most 6 h.
     #[arg(long)]
     pub relay: bool,
     /// Relay amplitude (input unit); default: the step size.
@@ -41,7 +79,7 @@ pub struct TuneArgs {
     #[arg(long)]
     pub relay_hysteresis: Option<f64>,
     /// Override the scenario's random seed.
-    #[arg(long)]
+    #[arg(long, conflicts_with = "daemon")]
     pub seed: Option<u64>,
     /// Print the result as one JSON object instead of a table.
     #[arg(long)]
@@ -50,6 +88,9 @@ pub struct TuneArgs {
 
 /// Runs `stiltd tune`.
 pub fn run(a: &TuneArgs) -> ExitCode {
+    if a.daemon.is_some() {
+        return run_daemon(a);
+    }
     let cfg = match &a.config {
         Some(p) => stilt_config::load_file(p),
         None => stilt_config::load_str(stilt_config::DEMO_SCENARIO, "built-in demo scenario"),
@@ -116,18 +157,278 @@ pub fn run(a: &TuneArgs) -> ExitCode {
             return ExitCode::FAILURE;
         }
     };
+    if let Err(code) = print_result(a, &result) {
+        return code;
+    }
+    if let Some(key) = &a.apply {
+        let p = match tune::find_proposal(&result, key) {
+            Ok(p) => p,
+            Err(e) => {
+                eprintln!("stiltd tune: --apply: {e}");
+                return ExitCode::from(2);
+            }
+        };
+        let current = match target {
+            Target::Leg(_) => cfg.control.leg_loop,
+            Target::TiltAxis(_) => cfg.control.tilt_loop,
+        };
+        eprintln!(
+            "stiltd tune: --apply {key}: this was the simulated stage, so nothing was applied; to use `{key}`, paste these lines into the configuration (or run with --daemon URL):"
+        );
+        eprint!("{}", tune::toml_for(target, &tune::gains_of(p, &current)));
+    }
+    ExitCode::SUCCESS
+}
+
+fn print_result(a: &TuneArgs, result: &TuneResult) -> Result<(), ExitCode> {
     if a.json {
-        match serde_json::to_string_pretty(&result) {
+        match serde_json::to_string_pretty(result) {
             Ok(s) => println!("{s}"),
             Err(e) => {
                 eprintln!("stiltd tune: cannot encode the result: {e}");
+                return Err(ExitCode::FAILURE);
+            }
+        }
+    } else {
+        print!("{}", tune::render(result));
+    }
+    Ok(())
+}
+
+/// Reads the token as stiltctl does: `--token-file`, else `STILT_TOKEN`.
+fn token(a: &TuneArgs) -> Result<Option<String>, String> {
+    if let Some(p) = &a.token_file {
+        let t = std::fs::read_to_string(p)
+            .map_err(|e| format!("--token-file: cannot read {}: {e}", p.display()))?;
+        let t = t.trim().to_string();
+        if t.is_empty() {
+            return Err(format!("--token-file: {} is empty", p.display()));
+        }
+        return Ok(Some(t));
+    }
+    Ok(std::env::var("STILT_TOKEN")
+        .ok()
+        .map(|t| t.trim().to_string())
+        .filter(|t| !t.is_empty()))
+}
+
+/// Sets `flag` on SIGINT or SIGTERM, from a thread of its own.
+fn catch_signals(flag: Arc<AtomicBool>) -> Result<(), String> {
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .map_err(|e| format!("cannot start the signal watcher: {e}"))?;
+    let (ready_tx, ready_rx) = std::sync::mpsc::channel();
+    std::thread::Builder::new()
+        .name("stiltd-tune-signals".into())
+        .spawn(move || {
+            rt.block_on(async move {
+                use tokio::signal::unix::{SignalKind, signal};
+                let term = signal(SignalKind::terminate());
+                let int = signal(SignalKind::interrupt());
+                let (Ok(mut term), Ok(mut int)) = (term, int) else {
+                    let _ = ready_tx.send(false);
+                    return;
+                };
+                let _ = ready_tx.send(true);
+                loop {
+                    tokio::select! {
+                        _ = term.recv() => {}
+                        _ = int.recv() => {}
+                    }
+                    flag.store(true, Ordering::SeqCst);
+                    eprintln!("stiltd tune: signal received: stopping the test and restoring the daemon's state");
+                }
+            });
+        })
+        .map_err(|e| format!("cannot start the signal watcher: {e}"))?;
+    match ready_rx.recv_timeout(Duration::from_secs(5)) {
+        Ok(true) => Ok(()),
+        _ => Err("cannot catch SIGINT and SIGTERM".into()),
+    }
+}
+
+/// `stiltd tune --daemon URL`.
+fn run_daemon(a: &TuneArgs) -> ExitCode {
+    let url = a.daemon.as_deref().unwrap_or_default();
+    let usage = |m: String| {
+        eprintln!("stiltd tune: {m}");
+        ExitCode::from(2)
+    };
+    if a.target.starts_with("tilt:") {
+        // Refused before connecting: the reason does not depend on the daemon.
+        return usage(format!(
+            "--loop: {}",
+            parse_leg(&a.target, &[]).unwrap_err()
+        ));
+    }
+    if !(a.progress_every.is_finite() && a.progress_every > 0.0 && a.progress_every <= 3600.0) {
+        return usage(format!(
+            "--progress-every {}: give more than 0 and at most 3600 seconds",
+            a.progress_every
+        ));
+    }
+    let token = match token(a) {
+        Ok(t) => t,
+        Err(e) => return usage(e),
+    };
+    let ca = match &a.ca_file {
+        Some(p) => match std::fs::read(p) {
+            Ok(b) => Some(b),
+            Err(e) => return usage(format!("--ca-file: cannot read {}: {e}", p.display())),
+        },
+        None => None,
+    };
+    let client = match Client::new(url, token, ca.as_deref(), Duration::from_secs(10)) {
+        Ok(c) => c,
+        Err(e) => return usage(format!("--daemon {url}: {e}")),
+    };
+    // The loop's name is checked against the daemon's own legs.
+    let cfg = match remote::DaemonApi::config(&client) {
+        Ok(c) => c,
+        Err(e) => {
+            eprintln!("stiltd tune: cannot read the daemon's configuration: {e}");
+            return ExitCode::FAILURE;
+        }
+    };
+    let leg = match parse_leg(
+        &a.target,
+        &cfg.legs.iter().map(|l| l.name.as_str()).collect::<Vec<_>>(),
+    ) {
+        Ok(i) => i,
+        Err(e) => return usage(format!("--loop: {e}")),
+    };
+    let defaults = RemoteOptions::new(leg);
+    let opts = RemoteOptions {
+        step: a.step,
+        settle_s: a.settle,
+        baseline_s: a.baseline.unwrap_or(defaults.baseline_s),
+        record_s: a.record.unwrap_or(defaults.record_s),
+        progress_every: Duration::from_secs_f64(a.progress_every),
+        ..defaults
+    };
+    let cancel = Arc::new(AtomicBool::new(false));
+    if let Err(e) = catch_signals(cancel.clone()) {
+        eprintln!("stiltd tune: {e}");
+        return ExitCode::FAILURE;
+    }
+    let run = match remote::run_remote_step_test(&client, &opts, &cancel, &mut |l| eprintln!("{l}"))
+    {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("stiltd tune: {e}");
+            return ExitCode::FAILURE;
+        }
+    };
+    for r in &run.restored {
+        eprintln!("tune: restored {r}");
+    }
+    let relay = if a.relay {
+        let ro = RelayOptions {
+            amplitude: a.relay_amplitude.or(a.step),
+            hysteresis: a.relay_hysteresis,
+            ..RelayOptions::default()
+        };
+        match remote::run_remote_relay_test(&client, &opts, &ro, &cancel, &mut |l| eprintln!("{l}"))
+        {
+            Ok(r) => {
+                for x in &r.restored {
+                    eprintln!("tune: restored {x}");
+                }
+                Some(r.record)
+            }
+            Err(e) => {
+                eprintln!("stiltd tune: relay test: {e}");
                 return ExitCode::FAILURE;
             }
         }
     } else {
-        print!("{}", tune::render(&result));
+        None
+    };
+    let result = match tune::analyse_with(&run.context, &run.record, relay.as_ref()) {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("stiltd tune: {e}");
+            return ExitCode::FAILURE;
+        }
+    };
+    if let Err(code) = print_result(a, &result) {
+        return code;
     }
-    ExitCode::SUCCESS
+    let Some(key) = &a.apply else {
+        return ExitCode::SUCCESS;
+    };
+    let p = match tune::find_proposal(&result, key) {
+        Ok(p) => p,
+        Err(e) => return usage(format!("--apply: {e}")),
+    };
+    let question = format!(
+        "apply {} (Kp {:.4}, Ti {} s, Td {:.4} s) to the leg loop of every leg of the daemon at {url}?",
+        p.rule,
+        p.kp,
+        p.ti_s.map_or("none".into(), |t| format!("{t:.4}")),
+        p.td_s
+    );
+    let stdin = std::io::stdin();
+    let tty = stdin.is_terminal();
+    let mut input = stdin.lock();
+    match remote::confirm(&question, a.yes, tty, &mut input, &mut std::io::stderr()) {
+        Ok(true) => {}
+        Ok(false) => {
+            eprintln!("stiltd tune: not applied (the answer was not yes)");
+            return ExitCode::SUCCESS;
+        }
+        Err(e) => {
+            eprintln!("stiltd tune: {e}");
+            return ExitCode::FAILURE;
+        }
+    }
+    match remote::apply_proposal(&client, result.target, p) {
+        Ok((reply, now)) => {
+            eprintln!(
+                "stiltd tune: applied; the daemon answered \"{}\" (by {}); the leg loop now has kp = {}, ti_s = {}, td_s = {}",
+                reply.detail,
+                reply.by,
+                now.kp,
+                now.ti_s.map_or("none".into(), |t| t.to_string()),
+                now.td_s
+            );
+            eprintln!(
+                "stiltd tune: the change lasts until the daemon restarts; the TOML lines above keep it"
+            );
+            ExitCode::SUCCESS
+        }
+        Err(e) => {
+            eprintln!("stiltd tune: --apply {key}: {e}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+/// `leg:NAME` or `leg:N` (1-based) among `names`; a tilt axis is refused with the reason.
+fn parse_leg(s: &str, names: &[&str]) -> Result<usize, String> {
+    let bad = || {
+        format!(
+            "`{s}` is not a leg of this daemon: give `leg:NAME` or `leg:N` ({}; N = 1…{})",
+            names.join(", "),
+            names.len()
+        )
+    };
+    match s.split_once(':') {
+        Some(("tilt", _)) => Err(format!(
+            "`{s}`: a tilt axis cannot be stepped open loop through the API (it has no per-leg setpoint offsets); tune a leg through the daemon, or the tilt axes on the simulated stage (without --daemon)"
+        )),
+        Some(("leg", what)) => {
+            if let Some(i) = names.iter().position(|n| *n == what) {
+                return Ok(i);
+            }
+            match what.parse::<usize>() {
+                Ok(n) if (1..=names.len()).contains(&n) => Ok(n - 1),
+                _ => Err(bad()),
+            }
+        }
+        _ => Err(bad()),
+    }
 }
 
 /// A progress bar on stderr, only when stderr is a terminal; its length is set by the caller.
@@ -143,4 +444,25 @@ pub(crate) fn progress_bar(what: &str) -> Option<indicatif::ProgressBar> {
         b.set_style(style.progress_chars("=> "));
     }
     Some(b)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::parse_leg;
+
+    #[test]
+    fn legs_parse_by_name_or_number_and_tilt_is_refused_with_its_reason() {
+        let names = ["A", "B", "C"];
+        assert_eq!(parse_leg("leg:B", &names), Ok(1));
+        assert_eq!(parse_leg("leg:3", &names), Ok(2));
+        for bad in ["leg:4", "leg:0", "leg:Z", "legs", ""] {
+            let e = parse_leg(bad, &names).unwrap_err();
+            assert!(e.contains("A, B, C") && e.contains("N = 1…3"), "{bad}: {e}");
+        }
+        let e = parse_leg("tilt:x", &names).unwrap_err();
+        assert!(
+            e.contains("per-leg setpoint offsets") && e.contains("without --daemon"),
+            "{e}"
+        );
+    }
 }
