@@ -243,18 +243,27 @@ fn command_line_prints_json_and_refuses_bad_loops() {
     let o = run(&["tune", "--loop", "leg:A", "--apply", "relay-pi"]);
     assert_eq!(o.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&o.stderr).contains("need --relay"));
-    // Through a daemon: a tilt axis is refused before connecting, an absent daemon is
-    // named (port 9 on loopback: nothing listens there in the test environment).
-    let o = run(&["tune", "--daemon", "http://127.0.0.1:9", "--loop", "tilt:x"]);
+    // Through a daemon: a tilt relay test is refused before connecting, an absent daemon
+    // is named (port 9 on loopback: nothing listens there in the test environment).
+    let o = run(&[
+        "tune",
+        "--daemon",
+        "http://127.0.0.1:9",
+        "--loop",
+        "tilt:x",
+        "--relay",
+    ]);
     assert_eq!(o.status.code(), Some(2));
-    assert!(String::from_utf8_lossy(&o.stderr).contains("per-leg setpoint offsets"));
-    let o = run(&["tune", "--daemon", "http://127.0.0.1:9", "--loop", "leg:A"]);
-    assert_eq!(o.status.code(), Some(1));
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert!(
-        err.contains("cannot connect") && err.contains("127.0.0.1:9"),
-        "{err}"
-    );
+    assert!(String::from_utf8_lossy(&o.stderr).contains("relay test of a tilt axis"));
+    for l in ["leg:A", "tilt:x"] {
+        let o = run(&["tune", "--daemon", "http://127.0.0.1:9", "--loop", l]);
+        assert_eq!(o.status.code(), Some(1));
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert!(
+            err.contains("cannot connect") && err.contains("127.0.0.1:9"),
+            "{err}"
+        );
+    }
     for bad in [
         &["tune", "--loop", "leg:Q"][..],
         &["tune", "--loop", "leg:A", "--step", "3"],

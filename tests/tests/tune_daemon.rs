@@ -66,8 +66,8 @@ fn stage_file() -> String {
             "rate_hz = 5.0\nmode = \"off\"",
         ),
         (
-            "sensor = \"pt100\"\npoll_hz = 2.0",
-            "sensor = \"pt100\"\npoll_hz = 5.0",
+            "poll_hz = 2.0\ntimeout_ms = 150",
+            "poll_hz = 5.0\ntimeout_ms = 150",
         ),
         (
             "[simulation]\nseed = 20261201",

@@ -12,7 +12,7 @@ use std::time::Duration;
 use serde::Serialize;
 use serde::de::DeserializeOwned;
 
-use super::wire::ChangeReply;
+use super::wire::{ChangeReply, TiltCorrectionBody};
 
 /// Why a request failed, worded for the person at the terminal.
 #[derive(Debug, thiserror::Error)]
@@ -272,6 +272,20 @@ impl Client {
     /// PUT a change.
     pub fn put<B: Serialize>(&self, path: &str, body: &B) -> Result<ChangeReply, ClientError> {
         self.change("PUT", path, body)
+    }
+
+    /// `PUT /v1/tilt-correction`: holds a tilt correction on either axis or both, µrad
+    /// (`None` keeps that axis's value). The daemon takes it in `temperature` mode only
+    /// (409 otherwise) and within ±`control.tilt_output_limit_urad` (422).
+    pub fn set_tilt_correction(
+        &self,
+        x_urad: Option<f64>,
+        y_urad: Option<f64>,
+    ) -> Result<ChangeReply, ClientError> {
+        self.put(
+            "/v1/tilt-correction",
+            &TiltCorrectionBody { x_urad, y_urad },
+        )
     }
 
     /// POST a change.

@@ -122,6 +122,16 @@ enum SetCmd {
         #[arg(long, allow_negative_numbers = true)]
         y_urad: Option<f64>,
     },
+    /// Hold a tilt correction per axis, µrad, applied at once (temperature mode only: an
+    /// open-loop step of the tilt plant; cleared by a change of mode).
+    Correction {
+        /// x correction, µrad.
+        #[arg(long, allow_negative_numbers = true)]
+        x_urad: Option<f64>,
+        /// y correction, µrad.
+        #[arg(long, allow_negative_numbers = true)]
+        y_urad: Option<f64>,
+    },
     /// New common leg temperature bias, °C.
     Bias {
         /// °C.
@@ -244,6 +254,12 @@ fn run(cli: &Cli) -> Result<(), String> {
                             y_urad: *y_urad,
                         },
                     ))?;
+                }
+                SetCmd::Correction { x_urad, y_urad } => {
+                    if x_urad.is_none() && y_urad.is_none() {
+                        return Err("give --x-urad, --y-urad or both".into());
+                    }
+                    done(c.set_tilt_correction(*x_urad, *y_urad))?;
                 }
                 SetCmd::Bias { celsius } => {
                     done(c.put("/v1/setpoint/leg-bias", &LegBiasBody { bias_c: *celsius }))?

@@ -1,6 +1,6 @@
 //! `stiltd tune`: a step test (and optionally a relay test) of one loop on the simulated
-//! stage, or a leg step test through a running daemon (`--daemon URL`), with the model
-//! fit and the tuning rules' proposals; `--apply RULE` puts a proposal into the daemon
+//! stage, or a step test of a leg or a tilt axis through a running daemon (`--daemon
+//! URL`), with the model fit and the tuning rules' proposals; `--apply RULE` puts a proposal into the daemon
 //! after a `[y/N]` confirmation. The engines are [`crate::tune`] (simulated) and
 //! [`crate::tune::remote`] (through the API); the analysis is shared.
 
@@ -19,16 +19,16 @@ use crate::tune::{self, RelayOptions, StepOptions, Target, TuneResult};
 /// Arguments of `stiltd tune`.
 #[derive(clap::Args, Debug)]
 pub struct TuneArgs {
-    /// The loop: `tilt:x`, `tilt:y`, or `leg:NAME` / `leg:N` (1-based); with --daemon
-    /// a leg only.
+    /// The loop: `tilt:x`, `tilt:y`, or `leg:NAME` / `leg:N` (1-based). With --daemon a
+    /// tilt axis is stepped through its held tilt correction in temperature mode.
     #[arg(long = "loop", value_name = "LOOP", default_value = "tilt:x")]
     pub target: String,
     /// A scenario of your own (TOML); default: the built-in demo scenario.
     #[arg(long, short, conflicts_with = "daemon")]
     pub config: Option<PathBuf>,
     /// Test through the running daemon at this address (e.g. http://127.0.0.1:8040)
-    /// instead of on the simulated stage: its mode, manual power and setpoints are read
-    /// first and put back at the end, whatever happens.
+    /// instead of on the simulated stage: its mode, manual power, setpoints and held tilt
+    /// correction are read first and put back at the end, whatever happens.
     #[arg(long, value_name = "URL")]
     pub daemon: Option<String>,
     /// With --daemon: a file holding the access token (else STILT_TOKEN).
@@ -39,15 +39,17 @@ pub struct TuneArgs {
     pub ca_file: Option<PathBuf>,
     /// Step size in the plant's input unit (W for a leg, µrad of tilt correction for an
     /// axis); default: a quarter of the heater headroom, or 2 µrad. Checked against every
-    /// limit. With --daemon it is a step of the manual power of every heater.
+    /// limit. With --daemon a leg's step is one of the manual power of every heater, a
+    /// tilt axis's one of the held tilt correction (within control.tilt_output_limit_urad).
     #[arg(long, allow_negative_numbers = true)]
     pub step: Option<f64>,
     /// Warm-up from a cold start before the baseline (simulated stage).
     #[arg(long, default_value = "3h", value_parser = crate::demo::parse_duration_s)]
     pub warmup: f64,
-    /// With --daemon: hold the heaters at their present power this long before the
-    /// baseline (daemon time). Give the stage time to become steady: the baseline's
-    /// straight line is removed as drift, and a leg still warming biases the fit.
+    /// With --daemon: hold the daemon in the test's mode this long before the baseline
+    /// (daemon time; a leg: manual mode at the present power; a tilt axis: temperature
+    /// mode). Give the stage time to become steady: the baseline's straight line is
+    /// removed as drift, and a leg still warming biases the fit.
     #[arg(long, default_value = "10m", value_parser = crate::demo::parse_duration_s)]
     pub settle: f64,
     /// With --daemon: at most one progress line on stderr this often, seconds.
@@ -69,7 +71,8 @@ pub struct TuneArgs {
     pub record: Option<f64>,
     /// Also run an Åström–Hägglund relay test (bounded amplitude) for Ku and Pu; with
     /// --daemon after the step test, switching the manual power between p0 ± amplitude
-    /// (so the heaters must be held above the amplitude), at most 6 h.
+    /// (so the heaters must be held above the amplitude), at most 6 h; with --daemon a
+    /// leg only.
     #[arg(long)]
     pub relay: bool,
     /// Relay amplitude (input unit); default: the step size.
@@ -255,12 +258,11 @@ fn run_daemon(a: &TuneArgs) -> ExitCode {
         eprintln!("stiltd tune: {m}");
         ExitCode::from(2)
     };
-    if a.target.starts_with("tilt:") {
+    if a.target.starts_with("tilt:") && a.relay {
         // Refused before connecting: the reason does not depend on the daemon.
-        return usage(format!(
-            "--loop: {}",
-            parse_leg(&a.target, &[]).unwrap_err()
-        ));
+        return usage(
+            "--relay: a relay test of a tilt axis through the daemon is not available (its step test is); drop --relay, or run the tilt relay test on the simulated stage (without --daemon)".into(),
+        );
     }
     if !(a.progress_every.is_finite() && a.progress_every > 0.0 && a.progress_every <= 3600.0) {
         return usage(format!(
@@ -291,14 +293,14 @@ fn run_daemon(a: &TuneArgs) -> ExitCode {
             return ExitCode::FAILURE;
         }
     };
-    let leg = match parse_leg(
+    let target = match parse_loop(
         &a.target,
         &cfg.legs.iter().map(|l| l.name.as_str()).collect::<Vec<_>>(),
     ) {
-        Ok(i) => i,
+        Ok(t) => t,
         Err(e) => return usage(format!("--loop: {e}")),
     };
-    let defaults = RemoteOptions::new(leg);
+    let defaults = RemoteOptions::new(target);
     let opts = RemoteOptions {
         step: a.step,
         settle_s: a.settle,
@@ -362,8 +364,12 @@ fn run_daemon(a: &TuneArgs) -> ExitCode {
         Ok(p) => p,
         Err(e) => return usage(format!("--apply: {e}")),
     };
+    let which = match target {
+        Target::Leg(_) => "the leg loop of every leg",
+        Target::TiltAxis(_) => "the tilt loop (both axes share its gains)",
+    };
     let question = format!(
-        "apply {} (Kp {:.4}, Ti {} s, Td {:.4} s) to the leg loop of every leg of the daemon at {url}?",
+        "apply {} (Kp {:.4}, Ti {} s, Td {:.4} s) to {which} of the daemon at {url}?",
         p.rule,
         p.kp,
         p.ti_s.map_or("none".into(), |t| format!("{t:.4}")),
@@ -386,9 +392,13 @@ fn run_daemon(a: &TuneArgs) -> ExitCode {
     match remote::apply_proposal(&client, result.target, p) {
         Ok((reply, now)) => {
             eprintln!(
-                "stiltd tune: applied; the daemon answered \"{}\" (by {}); the leg loop now has kp = {}, ti_s = {}, td_s = {}",
+                "stiltd tune: applied; the daemon answered \"{}\" (by {}); the {} loop now has kp = {}, ti_s = {}, td_s = {}",
                 reply.detail,
                 reply.by,
+                match target {
+                    Target::Leg(_) => "leg",
+                    Target::TiltAxis(_) => "tilt",
+                },
                 now.kp,
                 now.ti_s.map_or("none".into(), |t| t.to_string()),
                 now.td_s
@@ -405,25 +415,24 @@ fn run_daemon(a: &TuneArgs) -> ExitCode {
     }
 }
 
-/// `leg:NAME` or `leg:N` (1-based) among `names`; a tilt axis is refused with the reason.
-fn parse_leg(s: &str, names: &[&str]) -> Result<usize, String> {
+/// `tilt:x`, `tilt:y`, or `leg:NAME` / `leg:N` (1-based) among the daemon's leg `names`.
+fn parse_loop(s: &str, names: &[&str]) -> Result<Target, String> {
     let bad = || {
         format!(
-            "`{s}` is not a leg of this daemon: give `leg:NAME` or `leg:N` ({}; N = 1…{})",
+            "`{s}` is not a loop of this daemon: give `tilt:x`, `tilt:y`, or `leg:NAME` / `leg:N` ({}; N = 1…{})",
             names.join(", "),
             names.len()
         )
     };
     match s.split_once(':') {
-        Some(("tilt", _)) => Err(format!(
-            "`{s}`: a tilt axis cannot be stepped open loop through the API (it has no per-leg setpoint offsets); tune a leg through the daemon, or the tilt axes on the simulated stage (without --daemon)"
-        )),
+        Some(("tilt", "x")) => Ok(Target::TiltAxis(0)),
+        Some(("tilt", "y")) => Ok(Target::TiltAxis(1)),
         Some(("leg", what)) => {
             if let Some(i) = names.iter().position(|n| *n == what) {
-                return Ok(i);
+                return Ok(Target::Leg(i));
             }
             match what.parse::<usize>() {
-                Ok(n) if (1..=names.len()).contains(&n) => Ok(n - 1),
+                Ok(n) if (1..=names.len()).contains(&n) => Ok(Target::Leg(n - 1)),
                 _ => Err(bad()),
             }
         }
@@ -448,21 +457,22 @@ pub(crate) fn progress_bar(what: &str) -> Option<indicatif::ProgressBar> {
 
 #[cfg(test)]
 mod tests {
-    use super::parse_leg;
+    use super::parse_loop;
+    use crate::tune::Target;
 
     #[test]
-    fn legs_parse_by_name_or_number_and_tilt_is_refused_with_its_reason() {
+    fn loops_parse_by_leg_name_or_number_or_tilt_axis() {
         let names = ["A", "B", "C"];
-        assert_eq!(parse_leg("leg:B", &names), Ok(1));
-        assert_eq!(parse_leg("leg:3", &names), Ok(2));
-        for bad in ["leg:4", "leg:0", "leg:Z", "legs", ""] {
-            let e = parse_leg(bad, &names).unwrap_err();
-            assert!(e.contains("A, B, C") && e.contains("N = 1…3"), "{bad}: {e}");
+        assert_eq!(parse_loop("leg:B", &names), Ok(Target::Leg(1)));
+        assert_eq!(parse_loop("leg:3", &names), Ok(Target::Leg(2)));
+        assert_eq!(parse_loop("tilt:x", &names), Ok(Target::TiltAxis(0)));
+        assert_eq!(parse_loop("tilt:y", &names), Ok(Target::TiltAxis(1)));
+        for bad in ["leg:4", "leg:0", "leg:Z", "legs", "", "tilt:z", "tilt:"] {
+            let e = parse_loop(bad, &names).unwrap_err();
+            assert!(
+                e.contains("A, B, C") && e.contains("N = 1…3") && e.contains("tilt:x"),
+                "{bad}: {e}"
+            );
         }
-        let e = parse_leg("tilt:x", &names).unwrap_err();
-        assert!(
-            e.contains("per-leg setpoint offsets") && e.contains("without --daemon"),
-            "{e}"
-        );
     }
 }

@@ -9,8 +9,8 @@
 //!   went wrong and whether the daemon's previous state was restored;
 //! - [`run_remote_relay_test`] → [`RemoteRelayRun`]: the Åström–Hägglund relay test the
 //!   same way (the manual power switched between p0 ± d);
-//! - [`SavedState`] and [`restore`]: the mode, manual power and setpoints read before the
-//!   test, put back at its end whatever happened;
+//! - [`SavedState`] and [`restore`]: the mode, manual power, setpoints and held tilt
+//!   correction read before the test, put back at its end whatever happened;
 //! - [`confirm`] (the `[y/N]` question, refused without a terminal unless `--yes`) and
 //!   [`apply_proposal`] (PUT the gains, read them back).
 //!
@@ -23,8 +23,16 @@
 //! power limit, and 0 W), and the test stops when a leg comes within
 //! [`LEG_TEMP_MARGIN_K`] of `limits.max_leg_temp_c`.
 //!
-//! A tilt axis cannot be stepped open loop through the API (it has no per-leg setpoint
-//! offsets), so [`run_remote_step_test`] takes legs only.
+//! The tilt-axis test through the API (`Target::TiltAxis`): the daemon is put into
+//! `temperature` mode (the leg loops closed around the leg bias, the tilt loops open),
+//! settles, records a baseline of the axis's measured tilt, then steps the held tilt
+//! correction of that axis (`PUT /v1/tilt-correction`): each leg's setpoint moves at once
+//! by the geometry's offset for it — the same open-loop input of the tilt plant as the
+//! simulated test's. The step is kept within ±`control.tilt_output_limit_urad` and no leg
+//! setpoint may come within [`LEG_TEMP_MARGIN_K`] of `limits.max_leg_temp_c`; if a heater
+//! sits at 0 W or its maximum when the step is due (the leg loops could not follow), the
+//! test stops. At the end the correction is set back to 0 before the rest is restored.
+//! There is no relay test of a tilt axis through the daemon.
 
 use std::collections::HashSet;
 use std::io::{BufRead, Write};
@@ -40,8 +48,8 @@ use super::{
 };
 use crate::api::client::{Client, ClientError, EventReader};
 use crate::api::wire::{
-    ChangeReply, ConfigWire, GainsBody, GainsWire, LegBiasBody, ManualPowerBody, ModeBody,
-    SampleWire, StatusWire, TiltSetpointBody,
+    ChangeReply, ConfigLegWire, ConfigWire, GainsBody, GainsWire, LegBiasBody, ManualPowerBody,
+    ModeBody, SampleWire, StatusWire, TiltSetpointBody,
 };
 
 /// The test stops when a leg comes this close to `limits.max_leg_temp_c`, K (before the
@@ -79,6 +87,9 @@ pub trait DaemonApi {
     fn set_tilt_target(&self, target_urad: [f64; 2]) -> Result<ChangeReply, ClientError>;
     /// `PUT /v1/setpoint/leg-bias`.
     fn set_leg_bias(&self, bias_c: f64) -> Result<ChangeReply, ClientError>;
+    /// `PUT /v1/tilt-correction` (`None` keeps that axis's held value; temperature mode
+    /// only).
+    fn set_tilt_correction(&self, c: [Option<f64>; 2]) -> Result<ChangeReply, ClientError>;
     /// `PUT /v1/gains/leg` or `/v1/gains/tilt`.
     fn set_gains(&self, which: LoopKind, body: &GainsBody) -> Result<ChangeReply, ClientError>;
     /// `GET /v1/stream?every=1`: every control row.
@@ -137,6 +148,9 @@ impl DaemonApi for Client {
     fn set_leg_bias(&self, bias_c: f64) -> Result<ChangeReply, ClientError> {
         self.put("/v1/setpoint/leg-bias", &LegBiasBody { bias_c })
     }
+    fn set_tilt_correction(&self, c: [Option<f64>; 2]) -> Result<ChangeReply, ClientError> {
+        Client::set_tilt_correction(self, c[0], c[1])
+    }
     fn set_gains(&self, which: LoopKind, body: &GainsBody) -> Result<ChangeReply, ClientError> {
         match which {
             LoopKind::Leg => self.put("/v1/gains/leg", body),
@@ -161,6 +175,9 @@ pub struct SavedState {
     pub tilt_target_urad: [f64; 2],
     /// Leg bias target, °C.
     pub leg_bias_target_c: f64,
+    /// Tilt correction held (temperature mode only, else 0), µrad per axis: the axes'
+    /// `terms.out` in temperature mode.
+    pub held_correction_urad: [f64; 2],
 }
 
 impl SavedState {
@@ -182,20 +199,48 @@ impl SavedState {
                 st.axes.get(1).map_or(0.0, |a| a.target_urad),
             ],
             leg_bias_target_c: st.leg_bias_target_c,
+            held_correction_urad: held_correction(st),
         }
     }
 
     /// The `stiltctl` commands that put this state back by hand.
     pub fn by_hand(&self) -> String {
+        let held = self.held();
         format!(
-            "stiltctl set manual-power {}; stiltctl set tilt --x-urad {} --y-urad {}; stiltctl set bias {}; stiltctl mode {}",
+            "(if in temperature mode: stiltctl set correction --x-urad 0 --y-urad 0); stiltctl set manual-power {}; stiltctl set tilt --x-urad {} --y-urad {}; stiltctl set bias {}; stiltctl mode {}{}",
             self.manual_power_w,
             self.tilt_target_urad[0],
             self.tilt_target_urad[1],
             self.leg_bias_target_c,
-            self.mode
+            self.mode,
+            held.map_or(String::new(), |c| format!(
+                "; stiltctl set correction --x-urad {} --y-urad {}",
+                c[0], c[1]
+            ))
         )
     }
+
+    /// The held correction to put back after the mode: only in temperature mode, and only
+    /// when it is not zero.
+    fn held(&self) -> Option<[f64; 2]> {
+        (self.mode == "temperature" && self.held_correction_urad != [0.0; 2])
+            .then_some(self.held_correction_urad)
+    }
+}
+
+/// The tilt correction a status shows held: the axes' `terms.out` in temperature mode
+/// (the held value there), else none (0).
+fn held_correction(st: &StatusWire) -> [f64; 2] {
+    if st.mode != "temperature" {
+        return [0.0; 2];
+    }
+    [0, 1].map(|k| {
+        st.axes
+            .get(k)
+            .and_then(|a| a.terms.out)
+            .filter(|v| v.is_finite())
+            .unwrap_or(0.0)
+    })
 }
 
 /// Tries `f` up to three times, pausing `pause` between tries, on connection trouble only.
@@ -220,9 +265,11 @@ fn with_retries<T>(
     }))
 }
 
-/// Puts `saved` back: the manual power, then the setpoints if they differ now, then the
-/// mode. Every part is tried even when one fails (connection trouble is retried three
-/// times, `pause` apart). `Ok` lists what the daemon answered, `Err` what failed.
+/// Puts `saved` back: a held tilt correction back to 0 (when the daemon is in
+/// temperature mode), the manual power, then the setpoints if they differ now, then the
+/// mode, then a correction that was held before the test. Every part is tried even when
+/// one fails (connection trouble is retried three times, `pause` apart). `Ok` lists what
+/// the daemon answered, `Err` what failed.
 pub fn restore(
     api: &dyn DaemonApi,
     saved: &SavedState,
@@ -234,11 +281,26 @@ pub fn restore(
         Ok(a) => done.push(format!("{what}: {}", a.detail)),
         Err(e) => failed.push(format!("{what}: {e}")),
     };
+    let status = with_retries(pause, || api.status());
+    match &status {
+        Ok(st) if st.mode != "temperature" => {
+            // No correction can be held outside temperature mode.
+        }
+        Ok(_) => note(
+            "tilt correction",
+            with_retries(pause, || api.set_tilt_correction([Some(0.0), Some(0.0)])),
+        ),
+        Err(_) => match with_retries(pause, || api.set_tilt_correction([Some(0.0), Some(0.0)])) {
+            // Refused because the mode is not temperature: nothing is held.
+            Err(ClientError::Http { status: 409, .. }) => {}
+            r => note("tilt correction", r),
+        },
+    }
     note(
         "manual power",
         with_retries(pause, || api.set_manual_power(saved.manual_power_w)),
     );
-    match with_retries(pause, || api.status()) {
+    match status {
         Ok(st) => {
             let now = SavedState {
                 manual_power_w: saved.manual_power_w,
@@ -273,6 +335,12 @@ pub fn restore(
     let mode = with_retries(pause, || api.set_mode(&saved.mode));
     let mode_ok = mode.is_ok();
     note("mode", mode);
+    if let Some(c) = saved.held() {
+        note(
+            "held tilt correction",
+            with_retries(pause, || api.set_tilt_correction([Some(c[0]), Some(c[1])])),
+        );
+    }
     // The loop applies a change on its next tick and its status follows one tick later:
     // wait (up to 5 s) until the status shows the mode again, so that the caller's next
     // read sees the restored state.
@@ -306,8 +374,9 @@ pub fn restore(
 /// How a step test through the daemon runs. Durations are daemon seconds.
 #[derive(Debug, Clone, PartialEq)]
 pub struct RemoteOptions {
-    /// The leg (configuration order) whose temperature is recorded.
-    pub leg: usize,
+    /// The loop: a leg (configuration order) whose temperature is recorded, or a tilt
+    /// axis whose measured tilt is recorded.
+    pub target: Target,
     /// Step of the manual power, W; `None`: a quarter of the headroom.
     pub step: Option<f64>,
     /// Hold at the present power before the baseline begins.
@@ -327,20 +396,31 @@ pub struct RemoteOptions {
 }
 
 impl RemoteOptions {
-    /// Defaults for leg `leg`: 10 min settle, 30 min baseline, 3 h record (as on the
-    /// simulated stage), a progress line every 10 s, 10 s without a sample is a lost
-    /// connection, the status every second.
-    pub fn new(leg: usize) -> Self {
+    /// Defaults for `target`: 10 min settle, then the simulated stage's baseline and
+    /// record (30 min and 3 h for a leg, 10 min and 30 min for a tilt axis), a progress
+    /// line every 10 s, 10 s without a sample is a lost connection, the status every
+    /// second.
+    pub fn new(target: Target) -> Self {
+        let sim = StepOptions::new(target);
         RemoteOptions {
-            leg,
+            target,
             step: None,
             settle_s: 600.0,
-            baseline_s: 1800.0,
-            record_s: 3.0 * 3600.0,
+            baseline_s: sim.baseline_s,
+            record_s: sim.record_s,
             progress_every: Duration::from_secs(10),
             stall_after: Duration::from_secs(10),
             status_every: Duration::from_secs(1),
             retry_pause: Duration::from_secs(1),
+        }
+    }
+
+    /// The leg under test (a leg test), or the first leg (a tilt test: every sample must
+    /// carry at least one leg).
+    fn leg(&self) -> usize {
+        match self.target {
+            Target::Leg(i) => i,
+            Target::TiltAxis(_) => 0,
         }
     }
 }
@@ -367,8 +447,8 @@ pub enum RemoteError {
     Aborted {
         /// What went wrong.
         why: String,
-        /// The state the test tried to restore.
-        saved: SavedState,
+        /// The state the test tried to restore (boxed: the error stays small).
+        saved: Box<SavedState>,
         /// How restoring went.
         restore: Result<Vec<String>, Vec<String>>,
     },
@@ -394,7 +474,12 @@ fn refused(what: &str, e: ClientError) -> RemoteError {
 
 /// What was decided before anything changed.
 struct Plan {
+    /// The leg's name (a leg test) or the axis's (`x`, `y`).
     leg_name: String,
+    /// The mode the test holds the daemon in: leaving it stops the test.
+    hold_mode: &'static str,
+    /// What a tilt test needs beyond the rest.
+    tilt: Option<TiltPlan>,
     p0: f64,
     step: f64,
     period_s: f64,
@@ -411,12 +496,12 @@ fn plan(
     api: &dyn DaemonApi,
 ) -> Result<Plan, RemoteError> {
     let n = cfg.legs.len();
-    let Some(leg) = cfg.legs.get(opts.leg) else {
+    let Some(leg) = cfg.legs.get(opts.leg()) else {
         let names: Vec<&str> = cfg.legs.iter().map(|l| l.name.as_str()).collect();
         return Err(RemoteError::Refused(format!(
             "the daemon at {} has no leg {} (its legs: {})",
             api.describe(),
-            opts.leg + 1,
+            opts.leg() + 1,
             names.join(", ")
         )));
     };
@@ -446,7 +531,7 @@ fn plan(
         )));
     }
     let durations = StepOptions {
-        target: Target::Leg(opts.leg),
+        target: opts.target,
         step: opts.step,
         warmup_s: opts.settle_s,
         baseline_s: opts.baseline_s,
@@ -477,6 +562,8 @@ fn plan(
     }
     Ok(Plan {
         leg_name: leg.name.clone(),
+        hold_mode: "manual",
+        tilt: None,
         p0,
         step: d,
         period_s,
@@ -487,9 +574,158 @@ fn plan(
     })
 }
 
-/// Runs a leg step test through the daemon (see the module doc): reads the state, checks
-/// the step against every limit, holds the heaters in manual mode at their present power,
-/// settles, records a baseline, steps, records, and always restores the previous state.
+/// What a tilt-axis test needs beyond [`Plan`].
+struct TiltPlan {
+    /// 0 (x) or 1 (y).
+    axis: usize,
+    /// The correction held before the step, µrad per axis.
+    c0: [f64; 2],
+    /// The step's change of each leg's setpoint, K (the geometry's offsets).
+    d_offsets_k: Vec<f64>,
+    /// Each heater's maximum, W.
+    heater_max_w: Vec<f64>,
+}
+
+/// The leg temperature offsets (K) that tilt the plate by `tilt_urad`, from the legs'
+/// positions and expansion as the daemon reports them: the least-norm, zero-mean pattern
+/// of [`crate::core::geometry::Geometry::temperature_offsets_for_tilt`] (the same
+/// formula, on the wire's fields; a unit test checks them equal). Non-finite when the
+/// legs' tops are collinear.
+fn offsets_for_tilt(legs: &[ConfigLegWire], tilt_urad: [f64; 2]) -> Vec<f64> {
+    let n = legs.len().max(1) as f64;
+    let cx = legs.iter().map(|l| l.x_m).sum::<f64>() / n;
+    let cy = legs.iter().map(|l| l.y_m).sum::<f64>() / n;
+    let (a, b) = (tilt_urad[0] * 1e-6, tilt_urad[1] * 1e-6);
+    let (mut sxx, mut sxy, mut syy) = (0.0, 0.0, 0.0);
+    for l in legs {
+        let (x, y) = (l.x_m - cx, l.y_m - cy);
+        sxx += x * x;
+        sxy += x * y;
+        syy += y * y;
+    }
+    let degenerate = (sxx * syy - sxy * sxy).abs() <= 1e-18 || sxx.is_nan() || syy.is_nan();
+    legs.iter()
+        .map(|l| {
+            if degenerate {
+                return f64::NAN;
+            }
+            (a * (l.x_m - cx) + b * (l.y_m - cy)) / (l.cte_per_k * l.length_m)
+        })
+        .collect()
+}
+
+/// The plan of a tilt-axis step test: the held correction steps from its present value
+/// (0 unless the status shows one held in temperature mode) by `opts.step` (default
+/// min(2, limit/2) µrad, as on the simulated stage), within ±`tilt_output_limit_urad`,
+/// and no leg's setpoint may come within [`LEG_TEMP_MARGIN_K`] of `max_leg_temp_c`.
+fn plan_tilt(
+    axis: usize,
+    opts: &RemoteOptions,
+    st: &StatusWire,
+    cfg: &ConfigWire,
+    api: &dyn DaemonApi,
+) -> Result<Plan, RemoteError> {
+    let name = match axis {
+        0 => "x",
+        1 => "y",
+        _ => {
+            return Err(RemoteError::Refused(format!(
+                "no tilt axis {axis}: the axes are x and y"
+            )));
+        }
+    };
+    let n = cfg.legs.len();
+    if n < 3 || st.legs.len() != n || st.axes.len() < 2 {
+        return Err(RemoteError::Refused(format!(
+            "the daemon at {} reports {} legs in its configuration, {} in its status and {} tilt axes: a tilt test needs at least 3 legs and both axes",
+            api.describe(),
+            n,
+            st.legs.len(),
+            st.axes.len()
+        )));
+    }
+    let active: Vec<String> = st
+        .alarms
+        .iter()
+        .filter(|a| a.active)
+        .map(|a| format!("{} ({})", a.id, a.message))
+        .collect();
+    if !active.is_empty() {
+        return Err(RemoteError::Refused(format!(
+            "the daemon has active alarms: {}; a step test needs a quiet stage",
+            active.join(", ")
+        )));
+    }
+    let period_s = 1.0 / cfg.control.rate_hz;
+    if !(period_s.is_finite() && period_s > 0.0) {
+        return Err(RemoteError::Refused(format!(
+            "the daemon reports a control rate of {} Hz",
+            cfg.control.rate_hz
+        )));
+    }
+    let durations = StepOptions {
+        target: opts.target,
+        step: opts.step,
+        warmup_s: opts.settle_s,
+        baseline_s: opts.baseline_s,
+        record_s: opts.record_s,
+    };
+    check_durations_min(&durations, 10.0 * period_s, 30.0 * period_s)
+        .map_err(|e| RemoteError::Refused(format!("{e} (settle is the warm-up here)")))?;
+    let lim = cfg.control.tilt_output_limit_urad;
+    let c0 = held_correction(st);
+    let d = opts.step.unwrap_or(2.0_f64.min(0.5 * lim));
+    let c1_k = c0[axis] + d;
+    if !d.is_finite() || d == 0.0 || !lim.is_finite() || c1_k.abs() > lim {
+        return Err(RemoteError::Refused(format!(
+            "a tilt correction step of {d} µrad is not allowed: from the held {:.4} µrad on {name} it must be non-zero and end within the tilt loop's output limit, ±{lim} µrad (control.tilt_output_limit_urad)",
+            c0[axis]
+        )));
+    }
+    let mut c1 = c0;
+    c1[axis] = c1_k;
+    let off0 = offsets_for_tilt(&cfg.legs, c0);
+    let off1 = offsets_for_tilt(&cfg.legs, c1);
+    if off1.iter().chain(&off0).any(|o| !o.is_finite()) {
+        return Err(RemoteError::Refused(
+            "the daemon's legs give no tilt map (collinear tops or a zero expansion)".into(),
+        ));
+    }
+    let t_limit = cfg.limits.max_leg_temp_c - LEG_TEMP_MARGIN_K;
+    for (l, o) in cfg.legs.iter().zip(&off1) {
+        let sp = st.leg_bias_target_c + o;
+        if sp > t_limit {
+            return Err(RemoteError::Refused(format!(
+                "a tilt correction step of {d} µrad on {name} would set leg {} to {sp:.3} °C (bias {} °C {o:+.3} K), within {LEG_TEMP_MARGIN_K} K of limits.max_leg_temp_c = {} °C: use a smaller step",
+                l.name, st.leg_bias_target_c, cfg.limits.max_leg_temp_c
+            )));
+        }
+    }
+    let heater_max_w: Vec<f64> = cfg.legs.iter().map(|l| l.heater_max_power_w).collect();
+    Ok(Plan {
+        leg_name: name.into(),
+        hold_mode: "temperature",
+        tilt: Some(TiltPlan {
+            axis,
+            c0,
+            d_offsets_k: off1.iter().zip(&off0).map(|(a, b)| a - b).collect(),
+            heater_max_w: heater_max_w.clone(),
+        }),
+        p0: c0[axis],
+        step: d,
+        period_s,
+        max_leg_temp_c: cfg.limits.max_leg_temp_c,
+        max_power_w: heater_max_w.iter().copied().fold(f64::INFINITY, f64::min),
+        max_total_w: cfg.limits.max_total_power_w,
+        alarms_before: st.alarms.iter().map(|a| a.id.clone()).collect(),
+    })
+}
+
+/// Runs a step test through the daemon (see the module doc): reads the state, checks the
+/// step against every limit, holds the daemon in the test's mode (a leg: manual mode at
+/// the heaters' present power; a tilt axis: temperature mode, the leg loops closed),
+/// settles, records a baseline, steps (the manual power, or the held tilt correction),
+/// records, and always restores the previous state.
 /// `cancel` (set by a signal handler) stops the test; `log` receives the progress lines.
 pub fn run_remote_step_test(
     api: &dyn DaemonApi,
@@ -498,7 +734,11 @@ pub fn run_remote_step_test(
     log: &mut dyn FnMut(&str),
 ) -> Result<RemoteRun, RemoteError> {
     let (record, context, restored) = session(api, opts, None, cancel, log, &mut |w, log| {
-        drive(w, opts, log)
+        if w.plan.tilt.is_some() {
+            drive_tilt(w, opts, log)
+        } else {
+            drive(w, opts, log)
+        }
     })?;
     Ok(RemoteRun {
         record,
@@ -556,8 +796,9 @@ struct Watch<'a> {
     opts: &'a RemoteOptions,
     last_sample: Instant,
     last_status: Instant,
-    /// Set once the daemon was seen in manual mode: leaving it then stops the test.
-    manual_seen: bool,
+    /// Set once the daemon was seen in the test's mode (`plan.hold_mode`): leaving it
+    /// then stops the test.
+    mode_seen: bool,
 }
 
 impl Watch<'_> {
@@ -599,17 +840,17 @@ impl Watch<'_> {
                 }
             };
             self.last_sample = Instant::now();
-            if s.legs.len() <= self.opts.leg {
+            if s.legs.len() <= self.opts.leg() {
                 return Err(format!(
                     "a sample carries {} legs, not the leg {} under test",
                     s.legs.len(),
-                    self.opts.leg + 1
+                    self.opts.leg() + 1
                 ));
             }
-            if self.manual_seen && s.mode != "manual" {
+            if self.mode_seen && s.mode != self.plan.hold_mode {
                 return Err(format!(
-                    "the daemon left manual mode (now {}): an interlock or another client changed it",
-                    s.mode
+                    "the daemon left {} mode (now {}): an interlock or another client changed it",
+                    self.plan.hold_mode, s.mode
                 ));
             }
             let t_limit = self.plan.max_leg_temp_c - LEG_TEMP_MARGIN_K;
@@ -642,8 +883,8 @@ impl Watch<'_> {
             .map_err(|e| format!("switching the daemon to manual mode failed: {e}"))?;
         loop {
             let s = self.next()?;
-            if s.mode == "manual" && (s.legs[self.opts.leg].power_w - p0).abs() < 1e-6 {
-                self.manual_seen = true;
+            if s.mode == "manual" && (s.legs[self.opts.leg()].power_w - p0).abs() < 1e-6 {
+                self.mode_seen = true;
                 log(&format!(
                     "tune: manual mode at {p0:.4} W from daemon time {:.1} s; settling {} s",
                     s.t_s, self.opts.settle_s
@@ -671,9 +912,15 @@ fn session<T>(
     let cfg = api
         .config()
         .map_err(|e| refused("cannot read the daemon's configuration", e))?;
-    let plan = match relay_amplitude {
-        None => plan(opts, &st, &cfg, api)?,
-        Some(amp) => {
+    let plan = match (opts.target, relay_amplitude) {
+        (Target::TiltAxis(k), None) => plan_tilt(k, opts, &st, &cfg, api)?,
+        (Target::TiltAxis(_), Some(_)) => {
+            return Err(RemoteError::Refused(
+                "a relay test of a tilt axis through the daemon is not available (the step test is); run the tilt relay test on the simulated stage, without --daemon".into(),
+            ));
+        }
+        (Target::Leg(_), None) => plan(opts, &st, &cfg, api)?,
+        (Target::Leg(_), Some(amp)) => {
             let p = plan(
                 &RemoteOptions {
                     step: Some(amp.unwrap_or(f64::NAN)),
@@ -723,28 +970,51 @@ fn session<T>(
             }
         })
         .map_err(|e| RemoteError::Refused(format!("cannot start the stream reader: {e}")))?;
-    log(&format!(
-        "tune: daemon at {} (mode {}): holding every heater at {:.4} W (manual mode), {} {:.4} W, recording leg {}",
-        api.describe(),
-        saved.mode,
-        plan.p0,
-        if relay_amplitude.is_some() {
-            "relay ±"
-        } else {
-            "step"
-        },
-        plan.step,
-        plan.leg_name
-    ));
-    let context = AnalysisContext {
-        loop_name: format!(
-            "leg {} temperature loop (every heater stepped together through the API)",
+    let world = format!("daemon at {}, its own time stamps", api.describe());
+    let context = if plan.tilt.is_some() {
+        log(&format!(
+            "tune: daemon at {} (mode {}): temperature mode (leg loops closed), held tilt correction {} {:.4} → {:.4} µrad, recording tilt {}",
+            api.describe(),
+            saved.mode,
+            plan.leg_name,
+            plan.p0,
+            plan.p0 + plan.step,
             plan.leg_name
-        ),
-        world: format!("daemon at {}, its own time stamps", api.describe()),
-        control_period_s: plan.period_s,
-        current: gains_from_wire(&cfg.control.leg_loop),
-        current_source: "in force (daemon)".into(),
+        ));
+        AnalysisContext {
+            loop_name: format!(
+                "tilt {} loop (held tilt correction stepped through the API, leg loops closed)",
+                plan.leg_name
+            ),
+            world,
+            control_period_s: plan.period_s,
+            current: gains_from_wire(&cfg.control.tilt_loop),
+            current_source: "in force (daemon)".into(),
+        }
+    } else {
+        log(&format!(
+            "tune: daemon at {} (mode {}): holding every heater at {:.4} W (manual mode), {} {:.4} W, recording leg {}",
+            api.describe(),
+            saved.mode,
+            plan.p0,
+            if relay_amplitude.is_some() {
+                "relay ±"
+            } else {
+                "step"
+            },
+            plan.step,
+            plan.leg_name
+        ));
+        AnalysisContext {
+            loop_name: format!(
+                "leg {} temperature loop (every heater stepped together through the API)",
+                plan.leg_name
+            ),
+            world,
+            control_period_s: plan.period_s,
+            current: gains_from_wire(&cfg.control.leg_loop),
+            current_source: "in force (daemon)".into(),
+        }
     };
     let mut watch = Watch {
         api,
@@ -754,28 +1024,35 @@ fn session<T>(
         opts,
         last_sample: Instant::now(),
         last_status: Instant::now(),
-        manual_seen: false,
+        mode_seen: false,
     };
+    let watch_tilt = watch.plan.tilt.is_some();
     let outcome = body(&mut watch, log);
     // The reader thread ends at the stream's end or when it next sends; it is not joined
     // (a silent connection may block it in a read).
     drop(watch);
     drop(reader);
     log(&format!(
-        "tune: restoring mode {}, manual power {} W",
-        saved.mode, saved.manual_power_w
+        "tune: restoring {}mode {}, manual power {} W",
+        if watch_tilt {
+            "tilt correction 0, "
+        } else {
+            ""
+        },
+        saved.mode,
+        saved.manual_power_w
     ));
     let restored = restore(api, &saved, opts.retry_pause);
     match (outcome, restored) {
         (Ok(v), Ok(done)) => Ok((v, context, done)),
         (Ok(_), Err(f)) => Err(RemoteError::Aborted {
             why: "the test finished".into(),
-            saved,
+            saved: Box::new(saved),
             restore: Err(f),
         }),
         (Err(why), r) => Err(RemoteError::Aborted {
             why,
-            saved,
+            saved: Box::new(saved),
             restore: r,
         }),
     }
@@ -808,7 +1085,7 @@ fn drive(
     opts: &RemoteOptions,
     log: &mut dyn FnMut(&str),
 ) -> Result<StepRecord, String> {
-    let i = opts.leg;
+    let i = opts.leg();
     let (p0, step) = (w.plan.p0, w.plan.step);
     let p1 = p0 + step;
     let t0 = w.hold(log)?;
@@ -900,6 +1177,188 @@ fn drive(
     })
 }
 
+/// Whether any heater is at 0 W or at its maximum, or the total at its limit: the leg
+/// loops' outputs are clamped and the tilt plant is not the linear one being measured.
+fn heaters_limited(s: &SampleWire, max_w: &[f64], total_w: f64) -> Option<String> {
+    const TOL_W: f64 = 1e-6;
+    for (k, (l, m)) in s.legs.iter().zip(max_w).enumerate() {
+        if l.power_w <= TOL_W || l.power_w >= m - TOL_W {
+            return Some(format!(
+                "leg {}'s heater is at {:.4} W (its range 0 … {m} W)",
+                k + 1,
+                l.power_w
+            ));
+        }
+    }
+    let sum: f64 = s.legs.iter().map(|l| l.power_w).sum();
+    (sum >= total_w - TOL_W).then(|| {
+        format!("the heaters draw {sum:.4} W in total (limits.max_total_power_w = {total_w} W)")
+    })
+}
+
+/// The tilt-axis step test: temperature mode, settle, baseline of the axis's measured
+/// tilt, the held correction stepped on that axis, record.
+fn drive_tilt(
+    w: &mut Watch<'_>,
+    opts: &RemoteOptions,
+    log: &mut dyn FnMut(&str),
+) -> Result<StepRecord, String> {
+    let Some(tp) = w.plan.tilt.as_ref() else {
+        return Err("internal: a tilt test without its plan".into());
+    };
+    let k = tp.axis;
+    let c0 = tp.c0;
+    let d_off = tp.d_offsets_k.clone();
+    let heater_max = tp.heater_max_w.clone();
+    let (step, name) = (w.plan.step, w.plan.leg_name.clone());
+    let c1 = c0[k] + step;
+    w.api
+        .set_mode("temperature")
+        .map_err(|e| format!("switching the daemon to temperature mode failed: {e}"))?;
+    let t0 = loop {
+        let s = w.next()?;
+        if s.mode == "temperature" {
+            w.mode_seen = true;
+            log(&format!(
+                "tune: temperature mode from daemon time {:.1} s; settling {} s",
+                s.t_s, opts.settle_s
+            ));
+            break s.t_s;
+        }
+    };
+    // The setpoint change that shows the step, K: the largest leg offset.
+    let big = d_off.iter().fold(0.0_f64, |m, o| m.max(o.abs()));
+    let mut phase = Phase::Settle;
+    let (mut t_asked, mut t_step) = (f64::NAN, f64::NAN);
+    let mut sp_before: Vec<f64> = Vec::new();
+    let (mut time_s, mut output) = (Vec::new(), Vec::new());
+    let mut peak_p = (f64::NEG_INFINITY, w.plan.max_power_w);
+    let mut peak_total = f64::NEG_INFINITY;
+    let mut peak_temp = f64::NEG_INFINITY;
+    let mut limit_ticks = 0u64;
+    let mut last_progress: Option<Instant> = None;
+    loop {
+        let s = w.next()?;
+        if s.legs.len() != d_off.len() {
+            return Err(format!(
+                "a sample carries {} legs, the configuration {}",
+                s.legs.len(),
+                d_off.len()
+            ));
+        }
+        let tilt = s.tilt_urad[k].unwrap_or(f64::NAN);
+        match phase {
+            Phase::Settle => {
+                if s.t_s >= t0 + opts.settle_s {
+                    phase = Phase::Baseline;
+                }
+            }
+            Phase::Baseline => {
+                if s.t_s >= t0 + opts.settle_s + opts.baseline_s {
+                    if let Some(why) = heaters_limited(&s, &heater_max, w.plan.max_total_w) {
+                        return Err(format!(
+                            "{why} at the end of the baseline: the leg loops could not follow a tilt step; raise the leg bias (stiltctl set bias) so that every heater sits inside its range"
+                        ));
+                    }
+                    let mut c = [None, None];
+                    c[k] = Some(c1);
+                    w.api.set_tilt_correction(c).map_err(|e| {
+                        format!(
+                            "stepping the held tilt correction on {name} to {c1} µrad failed: {e}"
+                        )
+                    })?;
+                    t_asked = s.t_s;
+                    sp_before = s.legs.iter().map(|l| l.setpoint_c).collect();
+                    phase = Phase::Stepping;
+                    log(&format!(
+                        "tune: held tilt correction on {name} → {c1:.4} µrad asked at daemon time {t_asked:.1} s"
+                    ));
+                }
+            }
+            Phase::Stepping => {
+                let shows = s
+                    .legs
+                    .iter()
+                    .zip(&sp_before)
+                    .zip(&d_off)
+                    .all(|((l, b), o)| (l.setpoint_c - b - o).abs() <= 0.25 * big);
+                if shows {
+                    // The row's command goes out at the end of its tick.
+                    t_step = s.t_s;
+                    phase = Phase::Record;
+                } else if s.t_s > t_asked + 50.0 * w.plan.period_s {
+                    return Err(format!(
+                        "the daemon accepted the held tilt correction {c1} µrad on {name} but the leg setpoints do not show it after 50 control periods"
+                    ));
+                }
+            }
+            Phase::Record => {}
+        }
+        if matches!(phase, Phase::Baseline | Phase::Stepping | Phase::Record) {
+            time_s.push(s.t_s);
+            output.push(tilt);
+            limit_ticks +=
+                u64::from(heaters_limited(&s, &heater_max, w.plan.max_total_w).is_some());
+        }
+        if phase == Phase::Record {
+            for l in &s.legs {
+                peak_p.0 = peak_p.0.max(l.power_w);
+            }
+            peak_total = peak_total.max(s.legs.iter().map(|l| l.power_w).sum());
+            peak_temp = s
+                .legs
+                .iter()
+                .filter_map(|l| l.temp_c)
+                .fold(peak_temp, f64::max);
+        }
+        let finished = phase == Phase::Record && s.t_s >= t_step + opts.record_s;
+        if finished || last_progress.is_none_or(|t| t.elapsed() >= opts.progress_every) {
+            last_progress = Some(Instant::now());
+            let (what, done, total) = match phase {
+                Phase::Settle => ("settling", s.t_s - t0, opts.settle_s),
+                Phase::Baseline | Phase::Stepping => {
+                    ("baseline", s.t_s - t0 - opts.settle_s, opts.baseline_s)
+                }
+                Phase::Record => ("recording", s.t_s - t_step, opts.record_s),
+            };
+            log(&format!(
+                "tune: {what} {:.0} of {total:.0} s (daemon time {:.1} s): tilt {name} {}",
+                done.max(0.0),
+                s.t_s,
+                s.tilt_urad[k].map_or("no reading".into(), |t| format!("{t:.4} µrad"))
+            ));
+        }
+        if finished {
+            break;
+        }
+    }
+    if time_s.iter().filter(|&&t| t < t_step).count() < 5 {
+        return Err("fewer than 5 baseline samples arrived: the stream skipped too much".into());
+    }
+    let (time_s, output, drift) = clean_record(&time_s, &output, t_step);
+    if output.len() < 10 {
+        return Err(format!(
+            "only {} samples carry a tilt reading on {name}: is the tiltmeter reading?",
+            output.len()
+        ));
+    }
+    Ok(StepRecord {
+        target: opts.target,
+        input_unit: "µrad",
+        output_unit: "µrad",
+        input_before: c0[k],
+        input_step: step,
+        step_time_s: t_step,
+        time_s,
+        output,
+        drift_per_s: drift,
+        limit_ticks,
+        peak_power_w: peak_p,
+        peak_total_power_w: (peak_total, w.plan.max_total_w),
+        peak_leg_temp_c: (peak_temp, w.plan.max_leg_temp_c),
+    })
+}
+
 fn drive_relay(
     w: &mut Watch<'_>,
     opts: &RemoteOptions,
@@ -907,7 +1366,7 @@ fn drive_relay(
     eps: f64,
     log: &mut dyn FnMut(&str),
 ) -> Result<RelayRecord, String> {
-    let i = opts.leg;
+    let i = opts.leg();
     let (p0, d) = (w.plan.p0, w.plan.step);
     let t0 = w.hold(log)?;
     // Settle, then the operating point: the mean over the baseline.
@@ -1114,6 +1573,9 @@ mod tests {
         manual_w: f64,
         target: [f64; 2],
         bias: f64,
+        /// Held tilt correction, µrad (temperature mode only).
+        held: [f64; 2],
+        heater_max_w: f64,
         gains: serde_json::Value,
         calls: Vec<String>,
         status_calls: u32,
@@ -1132,6 +1594,8 @@ mod tests {
                 manual_w: 1.0,
                 target: [0.5, -0.25],
                 bias: 24.0,
+                held: [0.0; 2],
+                heater_max_w: 2.0,
                 gains: json!({"kp": 8.0, "ti_s": 300.0, "td_s": 0.0, "derivative_filter_s": 0.0,
                     "setpoint_weight": 1.0, "tracking_time_s": 300.0, "slew_per_s": 0.2}),
                 calls: Vec::new(),
@@ -1175,13 +1639,46 @@ mod tests {
     }
 
     fn power(s: &State) -> f64 {
-        if s.mode == "manual" { s.manual_w } else { 0.0 }
+        match s.mode.as_str() {
+            "manual" => s.manual_w,
+            // The leg loops hold every heater mid-range.
+            "temperature" => 1.0,
+            _ => 0.0,
+        }
+    }
+
+    /// The fake's legs: tops on a circle of 0.2 m, 120° apart (invented).
+    fn fake_legs(max_w: f64) -> serde_json::Value {
+        let leg = |n: &str, x: f64, y: f64| {
+            json!({"name": n, "x_m": x, "y_m": y, "length_m": 0.3,
+            "material": "aluminium", "cte_per_k": 23e-6, "heater_resistance_ohm": 50.0,
+            "heater_max_power_w": max_w, "thermometer_channel": 0})
+        };
+        let r = 0.2;
+        let (c, s) = (r * 0.5, r * 3.0_f64.sqrt() / 2.0);
+        json!([leg("A", r, 0.0), leg("B", -c, s), leg("C", -c, -s)])
+    }
+
+    /// The fake's leg setpoints: the bias plus the geometry's offsets for the held
+    /// correction in temperature mode, 24 °C otherwise.
+    fn setpoints(s: &State) -> Vec<f64> {
+        if s.mode != "temperature" {
+            return vec![24.0; 3];
+        }
+        let legs: Vec<ConfigLegWire> = serde_json::from_value(fake_legs(2.0)).unwrap();
+        offsets_for_tilt(&legs, s.held)
+            .iter()
+            .map(|o| s.bias + o)
+            .collect()
     }
 
     struct Source {
         fake: Fake,
         t_s: f64,
         rise_k: f64,
+        /// The invented tilt plant's state, µrad: gain 1, τ = `TAU_S` after the held
+        /// correction.
+        tilt: [f64; 2],
         n: usize,
     }
 
@@ -1196,13 +1693,21 @@ mod tests {
             self.t_s += DT_S;
             let p = power(&s);
             let temp = 21.0 + self.rise_k;
-            self.rise_k += (K * p - self.rise_k) * (1.0 - (-DT_S / TAU_S).exp());
-            let leg = json!({"temp_c": temp, "quality": "ok", "setpoint_c": 24.0, "power_w": p});
+            let a = 1.0 - (-DT_S / TAU_S).exp();
+            self.rise_k += (K * p - self.rise_k) * a;
+            let tilt = self.tilt;
+            for (t, c) in self.tilt.iter_mut().zip(s.held) {
+                *t += (c - *t) * a;
+            }
+            let legs: Vec<_> = setpoints(&s)
+                .into_iter()
+                .map(|sp| json!({"temp_c": temp, "quality": "ok", "setpoint_c": sp, "power_w": p}))
+                .collect();
             Ok(Some(
                 serde_json::from_value(json!({
                     "tick": self.n, "t_s": self.t_s, "t_utc_ns": 0, "mode": s.mode,
-                    "tilt_urad": [0.0, 0.0], "tilt_quality": "ok", "setpoint_urad": [0.0, 0.0],
-                    "target_urad": s.target, "legs": [leg, leg, leg]
+                    "tilt_urad": tilt, "tilt_quality": "ok", "setpoint_urad": [0.0, 0.0],
+                    "target_urad": s.target, "legs": legs
                 }))
                 .unwrap(),
             ))
@@ -1228,15 +1733,20 @@ mod tests {
                 "setpoint_c": 24.0, "power_w": p, "max_power_w": 2.0, "drive_v": 0.0,
                 "readback_power_w": null, "terms": {"p": null, "i": null, "d": null, "out": null}})
             };
-            let axis = |n: &str, t: f64| {
+            let axis = |n: &str, t: f64, c: f64| {
+                let out = if s.mode == "temperature" {
+                    json!(c)
+                } else {
+                    json!(null)
+                };
                 json!({"axis": n, "measured_urad": 0.0, "quality": "ok",
                 "age_s": 0.1, "setpoint_urad": t, "target_urad": t,
-                "terms": {"p": null, "i": null, "d": null, "out": null}})
+                "terms": {"p": null, "i": null, "d": null, "out": out}})
             };
             Ok(serde_json::from_value(json!({
                 "version": "test", "stage_name": "fake", "started_utc_ns": 0, "now_utc_ns": 0,
                 "uptime_s": 1.0, "mode": s.mode, "ready": true,
-                "axes": [axis("x", s.target[0]), axis("y", s.target[1])],
+                "axes": [axis("x", s.target[0], s.held[0]), axis("y", s.target[1], s.held[1])],
                 "leg_bias_c": s.bias, "leg_bias_target_c": s.bias,
                 "legs": [leg("A"), leg("B"), leg("C")], "alarms": alarms,
                 "timing": {"period_s": DT_S, "ticks": 1, "overruns": 0, "jitter_p50_s": 0.0,
@@ -1249,13 +1759,8 @@ mod tests {
         }
         fn config(&self) -> Result<ConfigWire, ClientError> {
             let s = self.state();
-            let leg = |n: &str| {
-                json!({"name": n, "x_m": 0.0, "y_m": 0.0, "length_m": 0.3,
-                "material": "aluminium", "cte_per_k": 23e-6, "heater_resistance_ohm": 50.0,
-                "heater_max_power_w": 2.0, "thermometer_channel": 0})
-            };
             Ok(serde_json::from_value(json!({
-                "stage_name": "fake", "legs": [leg("A"), leg("B"), leg("C")],
+                "stage_name": "fake", "legs": fake_legs(s.heater_max_w),
                 "tiltmeter_rate_hz": 10.0, "tiltmeter_range_urad": 500.0,
                 "control": {"rate_hz": 1.0 / DT_S, "initial_mode": "off",
                     "initial_setpoint_urad": [0.0, 0.0], "setpoint_ramp_urad_per_s": 0.01,
@@ -1273,7 +1778,31 @@ mod tests {
         }
         fn set_mode(&self, mode: &str) -> Result<ChangeReply, ClientError> {
             let m = mode.to_string();
-            self.change(format!("mode {mode}"), |s| s.mode = m)
+            self.change(format!("mode {mode}"), |s| {
+                // A change of mode clears the held correction (as the daemon's loop).
+                if s.mode != m {
+                    s.held = [0.0; 2];
+                }
+                s.mode = m
+            })
+        }
+        fn set_tilt_correction(&self, c: [Option<f64>; 2]) -> Result<ChangeReply, ClientError> {
+            if self.state().mode != "temperature" {
+                return Err(ClientError::Http {
+                    status: 409,
+                    code: "conflict".into(),
+                    field: Some("mode".into()),
+                    message: "temperature mode only".into(),
+                });
+            }
+            let show = c.map(|v| v.map_or("-".into(), |v| v.to_string()));
+            self.change(format!("correction {} {}", show[0], show[1]), move |s| {
+                for (h, v) in s.held.iter_mut().zip(c) {
+                    if let Some(v) = v {
+                        *h = v;
+                    }
+                }
+            })
         }
         fn set_manual_power(&self, w: f64) -> Result<ChangeReply, ClientError> {
             self.change(format!("manual-power {w}"), |s| s.manual_w = w)
@@ -1300,10 +1829,12 @@ mod tests {
         }
         fn samples(&self) -> Result<Box<dyn SampleSource>, ClientError> {
             let p = power(&self.state());
+            let held = self.state().held;
             Ok(Box::new(Source {
                 fake: self.clone(),
                 t_s: 100.0,
                 rise_k: K * p,
+                tilt: held,
                 n: 0,
             }))
         }
@@ -1319,7 +1850,7 @@ mod tests {
             stall_after: Duration::from_secs(5),
             status_every: Duration::ZERO,
             retry_pause: Duration::ZERO,
-            ..RemoteOptions::new(0)
+            ..RemoteOptions::new(Target::Leg(0))
         }
     }
 
@@ -1463,10 +1994,17 @@ mod tests {
             e.contains("active alarms") && e.contains("leg_temp_high"),
             "{e}"
         );
-        let e = run(&f, &RemoteOptions { leg: 5, ..opts() }, false)
-            .0
-            .unwrap_err()
-            .to_string();
+        let e = run(
+            &f,
+            &RemoteOptions {
+                target: Target::Leg(5),
+                ..opts()
+            },
+            false,
+        )
+        .0
+        .unwrap_err()
+        .to_string();
         assert!(e.contains("no leg 6") && e.contains("A, B, C"), "{e}");
         assert!(f.state().calls.is_empty() && f2.state().calls.is_empty());
     }
@@ -1549,5 +2087,253 @@ mod tests {
         };
         let e = apply_proposal(&f, Target::Leg(0), &p).unwrap_err();
         assert!(e.contains("zn-p") && e.contains("PI or PID"), "{e}");
+    }
+
+    fn tilt_opts() -> RemoteOptions {
+        RemoteOptions {
+            target: Target::TiltAxis(0),
+            ..opts()
+        }
+    }
+
+    fn assert_tilt_restored(f: &Fake) {
+        let s = f.state();
+        assert_restored_state(&s);
+        assert_eq!(s.held, [0.0, 0.0], "{:?}", s.calls);
+    }
+
+    fn assert_restored_state(s: &State) {
+        assert_eq!(s.mode, "off", "{:?}", s.calls);
+        assert_eq!(s.manual_w, 1.0, "{:?}", s.calls);
+        assert_eq!(s.target, [0.5, -0.25]);
+        assert_eq!(s.bias, 24.0);
+    }
+
+    #[test]
+    fn the_tilt_offsets_are_the_geometrys() {
+        // The wire's formula against the control core's Geometry, on the demo stage's legs
+        // (the same least-norm pattern; geometry.rs has its own hand checks).
+        let cfg = stilt_config::load_str(stilt_config::DEMO_SCENARIO, "demo").unwrap();
+        let wire: Vec<ConfigLegWire> = cfg
+            .legs
+            .iter()
+            .map(|l| ConfigLegWire {
+                name: l.name.clone(),
+                x_m: l.x_m,
+                y_m: l.y_m,
+                length_m: l.length_m,
+                material: String::new(),
+                cte_per_k: l.material.cte_per_k,
+                heater_resistance_ohm: l.heater_resistance_ohm,
+                heater_max_power_w: l.heater_max_power_w,
+                thermometer_channel: l.thermometer_channel,
+            })
+            .collect();
+        let g = crate::core::geometry::Geometry::new(&cfg.legs);
+        for c in [[2.0, 0.0], [0.0, -3.5], [1.25, 0.75]] {
+            let ours = offsets_for_tilt(&wire, c);
+            let theirs = g.temperature_offsets_for_tilt(c);
+            for (a, b) in ours.iter().zip(&theirs) {
+                assert!(
+                    (a - b).abs() <= 1e-12 * b.abs().max(1e-6),
+                    "{ours:?} {theirs:?}"
+                );
+            }
+            // And the pattern produces the asked tilt.
+            let back = g.tilt_from_temperature_offsets(&ours);
+            assert!((back[0] - c[0]).abs() < 1e-9 && (back[1] - c[1]).abs() < 1e-9);
+        }
+        // Collinear tops give no tilt map.
+        let mut line = wire.clone();
+        for (i, l) in line.iter_mut().enumerate() {
+            (l.x_m, l.y_m) = (i as f64 * 0.1, 0.0);
+        }
+        assert!(
+            offsets_for_tilt(&line, [1.0, 0.0])
+                .iter()
+                .all(|o| o.is_nan())
+        );
+    }
+
+    #[test]
+    fn a_tilt_step_test_steps_the_held_correction_fits_and_resets_it() {
+        let f = Fake::new();
+        let (r, lines) = run(&f, &tilt_opts(), false);
+        let run = r.unwrap();
+        assert_tilt_restored(&f);
+        let calls = f.state().calls.clone();
+        // Temperature mode, the correction stepped on x only, then back to 0 before the
+        // mode and the rest.
+        assert_eq!(
+            calls,
+            [
+                "mode temperature",
+                "correction 0.5 -",
+                "correction 0 0",
+                "manual-power 1",
+                "mode off"
+            ],
+        );
+        assert_eq!(run.record.target, Target::TiltAxis(0));
+        assert_eq!((run.record.input_before, run.record.input_step), (0.0, 0.5));
+        assert_eq!(run.record.limit_ticks, 0);
+        let res = super::super::analyse_with(&run.context, &run.record, None).unwrap();
+        // The invented tilt plant: gain 1 µrad/µrad, τ = 2 s.
+        assert!((res.model.gain - 1.0).abs() < 0.05, "{:?}", res.model);
+        assert!(
+            (res.model.time_constant_s - TAU_S).abs() < 0.1 * TAU_S,
+            "{:?}",
+            res.model
+        );
+        assert!(res.loop_name.contains("tilt x"), "{}", res.loop_name);
+        assert_eq!(res.current.kp, 8.0);
+        assert!(lines.iter().any(|l| l.contains("tilt x")), "{lines:?}");
+        // --apply goes to the tilt loop.
+        let g = NamedGains {
+            key: "simc",
+            rule: "SIMC".into(),
+            kp: 0.4,
+            ti_s: Some(3.0),
+            td_s: 0.0,
+        };
+        let (reply, now) = apply_proposal(&f, Target::TiltAxis(0), &g).unwrap();
+        assert!(reply.detail.contains("gains Tilt"), "{}", reply.detail);
+        assert_eq!((now.kp, now.ti_s), (0.4, Some(3.0)));
+    }
+
+    #[test]
+    fn a_tilt_test_from_a_held_correction_steps_from_it_and_puts_it_back() {
+        let f = Fake::new().with(|s| {
+            s.mode = "temperature".into();
+            s.held = [1.0, -0.5];
+        });
+        let run = run(&f, &tilt_opts(), false).0.unwrap();
+        assert_eq!((run.record.input_before, run.record.input_step), (1.0, 0.5));
+        let s = f.state();
+        assert_eq!(
+            s.calls,
+            [
+                "mode temperature",
+                "correction 1.5 -",
+                "correction 0 0",
+                "manual-power 1",
+                "mode temperature",
+                "correction 1 -0.5"
+            ]
+        );
+        assert_eq!((s.mode.as_str(), s.held), ("temperature", [1.0, -0.5]));
+    }
+
+    #[test]
+    fn an_aborted_tilt_test_resets_the_correction_and_restores() {
+        // An alarm, a lost stream, a signal: each after the step was asked or before.
+        // (The step is asked after 5 settle and 20 baseline samples.)
+        for (f, cancel, want, stepped) in [
+            (
+                Fake::new().with(|s| s.alarm_at_status_call = Some(60)),
+                false,
+                "alarm leg_temp_high",
+                true,
+            ),
+            (
+                Fake::new().with(|s| s.stream_ends_after = Some(40)),
+                false,
+                "closed its live stream",
+                true,
+            ),
+            (Fake::new(), true, "stopped by a signal", false),
+        ] {
+            let e = run(&f, &tilt_opts(), cancel).0.unwrap_err().to_string();
+            assert!(
+                e.contains(want) && e.contains("previous state was restored"),
+                "{e}"
+            );
+            assert_tilt_restored(&f);
+            let calls = f.state().calls.clone();
+            // When the correction was stepped, it was set back to 0 before the mode.
+            let i = calls.iter().position(|c| c == "correction 0.5 -");
+            assert_eq!(i.is_some(), stepped, "{calls:?}");
+            if let Some(i) = i {
+                let z = calls.iter().position(|c| c == "correction 0 0").unwrap();
+                let m = calls.iter().rposition(|c| c == "mode off").unwrap();
+                assert!(i < z && z < m, "{calls:?}");
+            }
+        }
+    }
+
+    #[test]
+    fn a_tilt_step_outside_the_limits_changes_nothing() {
+        let f = Fake::new();
+        // tilt_output_limit_urad = 60 in the fake's configuration.
+        for step in [60.5, -61.0, 0.0, f64::NAN] {
+            let e = run(
+                &f,
+                &RemoteOptions {
+                    step: Some(step),
+                    ..tilt_opts()
+                },
+                false,
+            )
+            .0
+            .unwrap_err();
+            let m = e.to_string();
+            assert!(matches!(e, RemoteError::Refused(_)), "{m}");
+            assert!(
+                m.contains("±60 µrad") && m.contains("nothing was changed"),
+                "{m}"
+            );
+        }
+        // From a held 59.8 µrad, +0.5 µrad would pass the limit.
+        let held = Fake::new().with(|s| {
+            s.mode = "temperature".into();
+            s.held = [59.8, 0.0];
+        });
+        let e = run(&held, &tilt_opts(), false).0.unwrap_err().to_string();
+        assert!(e.contains("59.8") && e.contains("±60"), "{e}");
+        // A leg setpoint near the leg temperature limit (35 °C − 0.5 K margin): from a bias
+        // of 34 °C, 40 µrad sets leg A above it (+1.16 K; the geometry's offsets).
+        let hot = Fake::new().with(|s| s.bias = 34.0);
+        let e = run(
+            &hot,
+            &RemoteOptions {
+                step: Some(40.0),
+                ..tilt_opts()
+            },
+            false,
+        )
+        .0
+        .unwrap_err()
+        .to_string();
+        assert!(e.contains("leg A") && e.contains("max_leg_temp_c"), "{e}");
+        // No relay test of a tilt axis through the daemon.
+        let flag = AtomicBool::new(false);
+        let e = run_remote_relay_test(
+            &f,
+            &tilt_opts(),
+            &RelayOptions::default(),
+            &flag,
+            &mut |_| {},
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(e.contains("relay test of a tilt axis"), "{e}");
+        for x in [&f, &held, &hot] {
+            assert!(x.state().calls.is_empty(), "{:?}", x.state().calls);
+        }
+    }
+
+    #[test]
+    fn saturated_heaters_at_the_step_stop_the_tilt_test() {
+        // The fake's leg loops hold every heater at 1 W; a manual power of 2 W in
+        // temperature mode is not possible, so invent it through the heater maximum:
+        // with 1 W as the maximum every heater sits at its limit.
+        let f = Fake::new().with(|s| s.heater_max_w = 1.0);
+        let e = run(&f, &tilt_opts(), false).0.unwrap_err().to_string();
+        assert!(
+            e.contains("heater is at 1.0000 W") && e.contains("restored"),
+            "{e}"
+        );
+        assert_tilt_restored(&f);
+        assert!(!f.state().calls.iter().any(|c| c == "correction 0.5 -"));
     }
 }
