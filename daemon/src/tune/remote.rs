@@ -341,18 +341,28 @@ pub fn restore(
             with_retries(pause, || api.set_tilt_correction([Some(c[0]), Some(c[1])])),
         );
     }
-    // The loop applies a change on its next tick and its status follows one tick later:
-    // wait (up to 5 s) until the status shows the mode again, so that the caller's next
-    // read sees the restored state.
+    // The loop applies a change at once but its status follows at its next tick: wait
+    // (up to 5 s) until the status shows the mode and the held correction again, so that
+    // the caller's next read sees the restored state.
     if mode_ok {
         let t0 = Instant::now();
+        let want_held = saved.held().unwrap_or([0.0; 2]);
+        let held_ok = |st: &StatusWire| {
+            let h = held_correction(st);
+            (h[0] - want_held[0]).abs() <= 1e-9 && (h[1] - want_held[1]).abs() <= 1e-9
+        };
         loop {
             match api.status() {
-                Ok(st) if st.mode == saved.mode => break,
+                Ok(st) if st.mode == saved.mode && held_ok(&st) => break,
                 Ok(st) if t0.elapsed() >= Duration::from_secs(5) => {
                     failed.push(format!(
-                        "mode: the daemon accepted {} but still reports {} after 5 s",
-                        saved.mode, st.mode
+                        "mode: the daemon accepted {} and a held tilt correction of [{}, {}] µrad but still reports {} and [{}, {}] after 5 s",
+                        saved.mode,
+                        want_held[0],
+                        want_held[1],
+                        st.mode,
+                        held_correction(&st)[0],
+                        held_correction(&st)[1]
                     ));
                     break;
                 }
