@@ -27,8 +27,8 @@ pub enum Command {
     Export(export::ExportArgs),
     /// Summarise recorded runs: tilt statistics, spectra, Allan deviation, coupling, plots.
     Report(report::ReportArgs),
-    /// Step-test one loop (simulated stage, or a leg through a running daemon), fit a model,
-    /// propose gains and optionally apply them.
+    /// Step-test one loop (simulated stage, or a leg or tilt axis through a running
+    /// daemon), fit a model, propose gains and optionally apply them.
     Tune(tune::TuneArgs),
     /// Run the daemon on the serial instruments of a stage file (`[instruments]`).
     Run(run::RunArgs),
