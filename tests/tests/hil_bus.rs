@@ -247,3 +247,40 @@ fn get(addr: &str, path: &str) -> String {
         .map(|(_, b)| b.to_string())
         .unwrap_or_default()
 }
+
+/// `stiltd hil --config` hands its stage file to the simulator too, so a bus of two units
+/// is emulated as the daemon expects: both units answer.
+#[test]
+fn stiltd_hil_gives_its_stage_file_to_the_simulator() {
+    let dir = scratch("hil-bus-config");
+    std::fs::write(dir.join("bus.toml"), bus_stage()).unwrap();
+    let out = Command::new(bin("stiltd"))
+        .current_dir(&dir)
+        .args([
+            "hil",
+            "--config",
+            "bus.toml",
+            "--work-dir",
+            "work",
+            "--duration",
+            "5",
+            "--no-record",
+            "--summary-json",
+            "--listen",
+            "127.0.0.1:0",
+        ])
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(out.status.success(), "{stderr}");
+    let summary: Value = String::from_utf8_lossy(&out.stdout)
+        .lines()
+        .filter_map(|l| serde_json::from_str(l).ok())
+        .find(|v: &Value| v.get("channels").is_some() && v.get("ticks").is_some())
+        .unwrap_or_else(|| panic!("no summary: {stderr}"));
+    for unit in ["thermometer@1", "thermometer@2"] {
+        let c = channel(&summary, unit);
+        assert!(c["requests"].as_u64().unwrap() >= 4, "{unit}: {c}");
+        assert_eq!(c["timeouts"], 0, "{unit} must answer: {c}");
+    }
+}

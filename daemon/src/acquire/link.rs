@@ -360,8 +360,11 @@ impl Line {
         loop {
             let now = Instant::now().saturating_duration_since(origin);
             if let Some(bytes) = session.poll_transmit(now) {
+                // No flush: on a serial port it is tcdrain(3), a blocking wait for the UART
+                // to send the bytes, which would stall this runtime's other lines and the
+                // control loop (≈ 4.6 ms for an 8-byte Modbus frame at 19200 baud). The
+                // reply timeout runs from here, so it also covers the transmission.
                 port.write_all(&bytes).await?;
-                port.flush().await?;
             }
             if let Some(ev) = session.poll_event() {
                 return Ok(ev);

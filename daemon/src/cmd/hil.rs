@@ -75,7 +75,14 @@ pub fn run(a: &HilArgs) -> ExitCode {
     }
     let map = dir.join("hil-ports.toml");
     let _ = std::fs::remove_file(&map);
-    let mut child = match start_sim(&sim, &map, a.faults.as_deref(), a.sim_speed, &dir) {
+    let mut child = match start_sim(
+        &sim,
+        a.config.as_deref(),
+        &map,
+        a.faults.as_deref(),
+        a.sim_speed,
+        &dir,
+    ) {
         Ok(c) => c,
         Err(e) => {
             eprintln!("stiltd: {e}");
@@ -123,8 +130,11 @@ struct Sim {
     relay: Option<std::thread::JoinHandle<()>>,
 }
 
+/// Starts the simulator on the stage file the daemon will run (`None`: the built-in one,
+/// which the simulator also has), so both see the same legs, units and physics.
 fn start_sim(
     sim: &Path,
+    config: Option<&Path>,
     map: &Path,
     faults: Option<&Path>,
     speed: f64,
@@ -137,6 +147,9 @@ fn start_sim(
         )
     })?;
     let mut c = Command::new(sim);
+    if let Some(cfg) = config {
+        c.arg(cfg);
+    }
     c.arg("--port-map").arg(map);
     c.arg("--speed").arg(speed.to_string());
     if let Some(f) = faults {
