@@ -1,6 +1,8 @@
 //! The heater supply's task: write every new drive command (SCPI, our own invented command
 //! set; channel n drives leg n−1), then read each output's current back and compare the
-//! power `I²·R` with the commanded `V²/R`.
+//! power `I²·R` with the commanded `V²/R`. The settings of all outputs go in one program
+//! message and the readbacks in one query message (units joined by `;`, IEEE 488.2), so a
+//! tick costs the line two exchanges whatever the number of legs.
 //!
 //! On every (re)connection the task clears the supply's status (`*CLS`), writes the latest
 //! command (zero at start: a supply may still hold a crashed run's setting) to each channel,
@@ -11,7 +13,7 @@
 //! tolerance clears it.
 
 use stilt_config::HeaterLink;
-use stilt_protocol::scpi::heater::{HeaterReply, HeaterRequest, MAX_VOLTS};
+use stilt_protocol::scpi::heater::{HeaterBatch, HeaterReply, HeaterRequest, MAX_VOLTS};
 use stilt_protocol::session::Session;
 use tokio::sync::watch;
 use tokio::time::Instant;
@@ -49,39 +51,36 @@ pub async fn run(
     shared: Shared,
     origin: Instant,
 ) {
-    let mut session = Session::<HeaterRequest>::new(session_config(
+    let mut session = Session::<HeaterBatch>::new(session_config(
         link.link.timeout_ms,
         link.link.retries,
         256,
         TURNAROUND,
     ));
     let n = resistances.len();
+    let channel = |ch: usize| ch as u8 + 1;
     let mut need_init = true;
     loop {
         if line.ensure_open().await {
             need_init = true;
         }
         if need_init {
-            let mut ok = !matches!(
-                line.request(&mut session, HeaterRequest::ClearStatus).await,
-                Outcome::Disconnected
-            );
             // The latest command (zero at start) goes to every channel *before* its output
             // is switched on: after a crash the supply may still hold the old setting.
             let latest = cmd.borrow().volts.clone();
+            let mut init = vec![HeaterRequest::ClearStatus];
             for ch in 0..n {
-                let set = HeaterRequest::SetVoltage {
-                    channel: ch as u8 + 1,
+                init.push(HeaterRequest::SetVoltage {
+                    channel: channel(ch),
                     volts: safe_volts(latest.get(ch).copied().unwrap_or(0.0)),
-                };
-                ok &= !matches!(line.request(&mut session, set).await, Outcome::Disconnected);
-                let on = HeaterRequest::SetOutput {
-                    channel: ch as u8 + 1,
+                });
+                init.push(HeaterRequest::SetOutput {
+                    channel: channel(ch),
                     on: true,
-                };
-                ok &= !matches!(line.request(&mut session, on).await, Outcome::Disconnected);
+                });
             }
-            if !ok {
+            let r = line.request(&mut session, HeaterBatch(init)).await;
+            if matches!(r, Outcome::Disconnected) {
                 continue;
             }
             need_init = false;
@@ -91,42 +90,47 @@ pub async fn run(
             return;
         }
         let c = cmd.borrow_and_update().clone();
-        let mut lost = false;
-        for (ch, v) in c.volts.iter().enumerate().take(n) {
-            let volts = safe_volts(*v);
-            let set = HeaterRequest::SetVoltage {
-                channel: ch as u8 + 1,
-                volts,
-            };
-            if matches!(line.request(&mut session, set).await, Outcome::Disconnected) {
-                lost = true;
-                break;
-            }
-        }
-        if lost {
+        // Every output's setting in one program message (one write per tick).
+        let sets = HeaterBatch(
+            (0..n)
+                .map(|ch| HeaterRequest::SetVoltage {
+                    channel: channel(ch),
+                    volts: safe_volts(c.volts.get(ch).copied().unwrap_or(0.0)),
+                })
+                .collect(),
+        );
+        if matches!(
+            line.request(&mut session, sets).await,
+            Outcome::Disconnected
+        ) {
             // Reconnect, re-initialise and write the newest command again.
             need_init = true;
             continue;
         }
         shared.with(|s| s.applied_generation = s.applied_generation.max(c.generation));
-        if !link.readback {
+        // A newer command waits for no readback: it goes out first.
+        if !link.readback || cmd.has_changed().unwrap_or(false) {
             continue;
         }
-        for (ch, (v, r)) in c.volts.iter().zip(&resistances).enumerate() {
-            // A newer command waits: it goes out before more readbacks.
-            if cmd.has_changed().unwrap_or(false) {
-                break;
+        // Every output's current in one query message, answered in one response.
+        let query = HeaterBatch(
+            (0..n)
+                .map(|ch| HeaterRequest::MeasureCurrent {
+                    channel: channel(ch),
+                })
+                .collect(),
+        );
+        let replies = match line.request(&mut session, query).await {
+            Outcome::Reply(r) => r,
+            Outcome::Disconnected => {
+                need_init = true;
+                continue;
             }
-            let q = HeaterRequest::MeasureCurrent {
-                channel: ch as u8 + 1,
-            };
-            let amps = match line.request(&mut session, q).await {
-                Outcome::Reply(HeaterReply::Amps(a)) => a,
-                Outcome::Disconnected => {
-                    need_init = true;
-                    break;
-                }
-                _ => continue,
+            _ => continue,
+        };
+        for (ch, ((v, r), reply)) in c.volts.iter().zip(&resistances).zip(replies).enumerate() {
+            let HeaterReply::Amps(amps) = reply else {
+                continue;
             };
             let bad = mismatch(*v, amps, *r, link.readback_tolerance_w);
             let p = amps * amps * r;

@@ -428,6 +428,59 @@ impl OpenCircuitRule {
     }
 }
 
+/// Several requests sent as one program message, units joined by `;` (IEEE 488.2 §7.1: a
+/// program message is one or more program message units), with one response message
+/// whose units (joined by `;`, §8.4) answer the queries in order. One write and one reply
+/// instead of one per channel: the daemon sets and reads back every output this way.
+#[derive(Debug, Clone, PartialEq)]
+pub struct HeaterBatch(pub Vec<HeaterRequest>);
+
+impl HeaterBatch {
+    fn queries(&self) -> impl Iterator<Item = &HeaterRequest> {
+        self.0.iter().filter(|r| r.is_query())
+    }
+}
+
+impl crate::session::Exchange for HeaterBatch {
+    /// One reply per query, in order.
+    type Reply = Vec<HeaterReply>;
+    type Error = ScpiError;
+
+    fn encode(&self, out: &mut Vec<u8>) {
+        for (i, r) in self.0.iter().enumerate() {
+            if i > 0 {
+                out.push(b';');
+            }
+            r.encode_unit(out);
+        }
+        out.extend_from_slice(Terminator::Lf.bytes());
+    }
+
+    fn expects_reply(&self) -> bool {
+        self.queries().next().is_some()
+    }
+
+    fn decode_reply(&self, buf: &[u8]) -> Result<Option<(Vec<HeaterReply>, usize)>, ScpiError> {
+        let Some((line, consumed)) = super::split_message(buf, super::MAX_MESSAGE_LEN)? else {
+            return Ok(None);
+        };
+        let units = super::split_response_units(line)?;
+        let n = self.queries().count();
+        if units.len() != n {
+            return Err(ScpiError::BadResponse {
+                expected: "one response unit per query of the message",
+                shown: escape_bytes(line, SHOWN_REPLY_CHARS),
+            });
+        }
+        let replies = self
+            .queries()
+            .zip(units)
+            .map(|(q, u)| q.decode_reply(u))
+            .collect::<Result<Vec<_>, _>>()?;
+        Ok(Some((replies, consumed)))
+    }
+}
+
 impl crate::session::Exchange for HeaterRequest {
     type Reply = HeaterReply;
     type Error = ScpiError;

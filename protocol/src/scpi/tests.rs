@@ -221,6 +221,43 @@ fn heater_requests_round_trip_through_the_device_parser() {
 }
 
 #[test]
+fn heater_batch_is_one_message_and_one_response() {
+    use crate::session::Exchange;
+    let batch = HeaterBatch(vec![
+        HeaterRequest::SetVoltage {
+            channel: 1,
+            volts: 2.0,
+        },
+        HeaterRequest::MeasureCurrent { channel: 1 },
+        HeaterRequest::MeasureCurrent { channel: 2 },
+    ]);
+    let mut out = Vec::new();
+    batch.encode(&mut out);
+    // Program message units joined by ';', each from the root, one terminator
+    // (IEEE 488.2 §7.1 and §7.5); the device side parses it back unit for unit.
+    assert_eq!(
+        out,
+        b":OUTP1:VOLT +2.000000E+00;:MEAS1:CURR?;:MEAS2:CURR?\n"
+    );
+    let parsed = parse_heater_message(&out[..out.len() - 1], 8);
+    assert_eq!(parsed.requests, batch.0);
+    assert!(batch.expects_reply());
+    // One response unit per query, joined by ';' (§8.4), decoded in order.
+    let (r, used) = batch
+        .decode_reply(b"+1.0E-01;+2.5E-01\nX")
+        .unwrap()
+        .unwrap();
+    assert_eq!(used, 18);
+    assert_eq!(r, vec![HeaterReply::Amps(0.1), HeaterReply::Amps(0.25)]);
+    // A response with a unit missing (or one too many) is an error, not a guess.
+    assert!(batch.decode_reply(b"+1.0E-01\n").is_err());
+    assert!(batch.decode_reply(b"+1;+2;+3\n").is_err());
+    assert_eq!(batch.decode_reply(b"+1.0E-01;+2").unwrap(), None);
+    // Sets only: no reply expected.
+    assert!(!HeaterBatch(vec![HeaterRequest::ClearStatus]).expects_reply());
+}
+
+#[test]
 fn heater_device_accepts_long_forms_and_default_suffix() {
     let m = parse_heater_message(
         b"output:voltage 2.5;state 1;:MEASure:CURRent?;:SYST:ERR:NEXT?",
@@ -353,6 +390,16 @@ proptest! {
         msg in "[:;*?, 'A-Za-z0-9.+\\-\"]{0,80}"
     ) {
         let _ = parse_heater_message(msg.as_bytes(), 8);
+    }
+
+    #[test]
+    fn heater_batch_decoder_never_panics(buf in proptest::collection::vec(any::<u8>(), 0..300)) {
+        use crate::session::Exchange;
+        let batch = HeaterBatch((1..=3).map(|channel| HeaterRequest::MeasureCurrent { channel }).collect());
+        if let Ok(Some((r, used))) = batch.decode_reply(&buf) {
+            prop_assert_eq!(r.len(), 3);
+            prop_assert!(used <= buf.len());
+        }
     }
 
     #[test]
