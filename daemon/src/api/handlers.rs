@@ -209,6 +209,33 @@ fn invalid(st: &AppState, e: ApiError) -> ApiError {
     e
 }
 
+/// The `x_urad` / `y_urad` of a body, each within ±`bound` (`inclusive`: the bound itself
+/// allowed); at least one must be given.
+fn per_axis(
+    st: &AppState,
+    given: [Option<f64>; 2],
+    bound: f64,
+    inclusive: bool,
+    unit: &str,
+) -> Result<[Option<f64>; 2], ApiError> {
+    let mut out = [None, None];
+    for (k, field) in ["x_urad", "y_urad"].into_iter().enumerate() {
+        if let Some(v) = given[k] {
+            out[k] = Some(
+                check(field, v, -bound, inclusive, bound, inclusive, unit)
+                    .map_err(|e| invalid(st, e))?,
+            );
+        }
+    }
+    if out == [None, None] {
+        return Err(invalid(
+            st,
+            ApiError::invalid("x_urad", "give x_urad, y_urad or both"),
+        ));
+    }
+    Ok(out)
+}
+
 /// `PUT /v1/setpoint/tilt`.
 pub async fn set_tilt(
     State(st): State<AppState>,
@@ -216,32 +243,13 @@ pub async fn set_tilt(
     JsonBody(b): JsonBody<TiltSetpointBody>,
 ) -> Result<Json<ChangeReply>, ApiError> {
     let range = st.inner.config.limits.tilt_range_urad;
-    let mut t = [None, None];
-    for (k, (field, v)) in [("x_urad", b.x_urad), ("y_urad", b.y_urad)]
-        .into_iter()
-        .enumerate()
-    {
-        if let Some(v) = v {
-            t[k] = Some(
-                check(
-                    field,
-                    v,
-                    -range,
-                    false,
-                    range,
-                    false,
-                    "µrad (limits.tilt_range_urad)",
-                )
-                .map_err(|e| invalid(&st, e))?,
-            );
-        }
-    }
-    if t == [None, None] {
-        return Err(invalid(
-            &st,
-            ApiError::invalid("x_urad", "give x_urad, y_urad or both"),
-        ));
-    }
+    let t = per_axis(
+        &st,
+        [b.x_urad, b.y_urad],
+        range,
+        false,
+        "µrad (limits.tilt_range_urad)",
+    )?;
     let asked = format!("tilt target µrad: x={:?} y={:?}", t[0], t[1]);
     submit(&st, &caller, ControlRequest::SetTiltTarget(t), asked)
         .await
@@ -256,32 +264,13 @@ pub async fn set_tilt_correction(
     JsonBody(b): JsonBody<TiltCorrectionBody>,
 ) -> Result<Json<ChangeReply>, ApiError> {
     let lim = st.inner.config.control.tilt_output_limit_urad;
-    let mut c = [None, None];
-    for (k, (field, v)) in [("x_urad", b.x_urad), ("y_urad", b.y_urad)]
-        .into_iter()
-        .enumerate()
-    {
-        if let Some(v) = v {
-            c[k] = Some(
-                check(
-                    field,
-                    v,
-                    -lim,
-                    true,
-                    lim,
-                    true,
-                    "µrad (control.tilt_output_limit_urad)",
-                )
-                .map_err(|e| invalid(&st, e))?,
-            );
-        }
-    }
-    if c == [None, None] {
-        return Err(invalid(
-            &st,
-            ApiError::invalid("x_urad", "give x_urad, y_urad or both"),
-        ));
-    }
+    let c = per_axis(
+        &st,
+        [b.x_urad, b.y_urad],
+        lim,
+        true,
+        "µrad (control.tilt_output_limit_urad)",
+    )?;
     let asked = format!("held tilt correction µrad: x={:?} y={:?}", c[0], c[1]);
     submit(&st, &caller, ControlRequest::SetTiltCorrection(c), asked)
         .await

@@ -499,28 +499,14 @@ struct Plan {
     alarms_before: HashSet<String>,
 }
 
-fn plan(
+/// Checks common to every step test through the daemon: no active alarm, a sane control
+/// rate, and durations of at least 10 periods of baseline and 30 of record. Returns the
+/// control period, s.
+fn quiet_stage_and_durations(
     opts: &RemoteOptions,
     st: &StatusWire,
     cfg: &ConfigWire,
-    api: &dyn DaemonApi,
-) -> Result<Plan, RemoteError> {
-    let n = cfg.legs.len();
-    let Some(leg) = cfg.legs.get(opts.leg()) else {
-        let names: Vec<&str> = cfg.legs.iter().map(|l| l.name.as_str()).collect();
-        return Err(RemoteError::Refused(format!(
-            "the daemon at {} has no leg {} (its legs: {})",
-            api.describe(),
-            opts.leg() + 1,
-            names.join(", ")
-        )));
-    };
-    if st.legs.len() != n {
-        return Err(RemoteError::Refused(format!(
-            "the daemon's status lists {} legs but its configuration {n}",
-            st.legs.len()
-        )));
-    }
+) -> Result<f64, RemoteError> {
     let active: Vec<String> = st
         .alarms
         .iter()
@@ -547,9 +533,34 @@ fn plan(
         baseline_s: opts.baseline_s,
         record_s: opts.record_s,
     };
-    // At least 10 samples of baseline and 30 of record.
     check_durations_min(&durations, 10.0 * period_s, 30.0 * period_s)
         .map_err(|e| RemoteError::Refused(format!("{e} (settle is the warm-up here)")))?;
+    Ok(period_s)
+}
+
+fn plan(
+    opts: &RemoteOptions,
+    st: &StatusWire,
+    cfg: &ConfigWire,
+    api: &dyn DaemonApi,
+) -> Result<Plan, RemoteError> {
+    let n = cfg.legs.len();
+    let Some(leg) = cfg.legs.get(opts.leg()) else {
+        let names: Vec<&str> = cfg.legs.iter().map(|l| l.name.as_str()).collect();
+        return Err(RemoteError::Refused(format!(
+            "the daemon at {} has no leg {} (its legs: {})",
+            api.describe(),
+            opts.leg() + 1,
+            names.join(", ")
+        )));
+    };
+    if st.legs.len() != n {
+        return Err(RemoteError::Refused(format!(
+            "the daemon's status lists {} legs but its configuration {n}",
+            st.legs.len()
+        )));
+    }
+    let period_s = quiet_stage_and_durations(opts, st, cfg)?;
     // The API's manual power is one value for every heater, bounded by the smallest.
     let max_power_w = cfg
         .legs
@@ -654,34 +665,7 @@ fn plan_tilt(
             st.axes.len()
         )));
     }
-    let active: Vec<String> = st
-        .alarms
-        .iter()
-        .filter(|a| a.active)
-        .map(|a| format!("{} ({})", a.id, a.message))
-        .collect();
-    if !active.is_empty() {
-        return Err(RemoteError::Refused(format!(
-            "the daemon has active alarms: {}; a step test needs a quiet stage",
-            active.join(", ")
-        )));
-    }
-    let period_s = 1.0 / cfg.control.rate_hz;
-    if !(period_s.is_finite() && period_s > 0.0) {
-        return Err(RemoteError::Refused(format!(
-            "the daemon reports a control rate of {} Hz",
-            cfg.control.rate_hz
-        )));
-    }
-    let durations = StepOptions {
-        target: opts.target,
-        step: opts.step,
-        warmup_s: opts.settle_s,
-        baseline_s: opts.baseline_s,
-        record_s: opts.record_s,
-    };
-    check_durations_min(&durations, 10.0 * period_s, 30.0 * period_s)
-        .map_err(|e| RemoteError::Refused(format!("{e} (settle is the warm-up here)")))?;
+    let period_s = quiet_stage_and_durations(opts, st, cfg)?;
     let lim = cfg.control.tilt_output_limit_urad;
     let c0 = held_correction(st);
     let d = opts.step.unwrap_or(2.0_f64.min(0.5 * lim));
