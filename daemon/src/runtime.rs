@@ -181,6 +181,7 @@ pub fn start(
         settings_tx,
         rows_tx,
         jitter: VecDeque::with_capacity(JITTER_WINDOW),
+        jitter_scratch: Vec::with_capacity(JITTER_WINDOW),
         timing: LoopTiming::default(),
         last_tilt_ok_s: None,
         last_readings: Readings::default(),
@@ -261,6 +262,7 @@ struct Loop {
     settings_tx: watch::Sender<Arc<Settings>>,
     rows_tx: broadcast::Sender<Arc<ControlRow>>,
     jitter: VecDeque<f64>,
+    jitter_scratch: Vec<f64>,
     timing: LoopTiming,
     last_tilt_ok_s: Option<f64>,
     last_readings: Readings,
@@ -360,12 +362,21 @@ impl Loop {
             self.timing.overruns += 1;
             self.pipeline.note_overrun();
         }
-        let mut v: Vec<f64> = self.jitter.iter().copied().collect();
-        v.sort_by(f64::total_cmp);
-        let q = |p: f64| v[((v.len() - 1) as f64 * p).round() as usize];
+        // Two selections on a reused buffer instead of a sort and an allocation per tick.
+        let v = &mut self.jitter_scratch;
+        v.clear();
+        v.extend(self.jitter.iter().copied());
+        let at = |p: f64| ((v.len() - 1) as f64 * p).round() as usize;
+        let (i50, i99) = (at(0.5), at(0.99));
+        let p99 = *v.select_nth_unstable_by(i99, f64::total_cmp).1;
+        let p50 = if i50 < i99 {
+            *v[..i99].select_nth_unstable_by(i50, f64::total_cmp).1
+        } else {
+            p99
+        };
         // Timing is reported in run-clock seconds' wall equivalent: real seconds.
-        self.timing.jitter_p50_s = q(0.5);
-        self.timing.jitter_p99_s = q(0.99);
+        self.timing.jitter_p50_s = p50;
+        self.timing.jitter_p99_s = p99;
     }
 
     fn tick(&mut self, now_s: f64, t0: Instant) {
