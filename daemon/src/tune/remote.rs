@@ -1086,9 +1086,7 @@ fn drive(
     let mut phase = Phase::Settle;
     let (mut t_asked, mut t_step) = (f64::NAN, f64::NAN);
     let (mut time_s, mut output) = (Vec::new(), Vec::new());
-    let mut peak_p = (f64::NEG_INFINITY, w.plan.max_power_w);
-    let mut peak_total = f64::NEG_INFINITY;
-    let mut peak_temp = f64::NEG_INFINITY;
+    let mut peaks = Peaks::default();
     let mut last_progress: Option<Instant> = None;
     loop {
         let s = w.next()?;
@@ -1131,15 +1129,7 @@ fn drive(
             output.push(temp);
         }
         if phase == Phase::Record {
-            for l in &s.legs {
-                peak_p.0 = peak_p.0.max(l.power_w);
-            }
-            peak_total = peak_total.max(s.legs.iter().map(|l| l.power_w).sum());
-            peak_temp = s
-                .legs
-                .iter()
-                .filter_map(|l| l.temp_c)
-                .fold(peak_temp, f64::max);
+            peaks.note(&s);
         }
         let finished = phase == Phase::Record && s.t_s >= t_step + opts.record_s;
         if finished || last_progress.is_none_or(|t| t.elapsed() >= opts.progress_every) {
@@ -1165,9 +1155,9 @@ fn drive(
         output,
         drift_per_s: drift,
         limit_ticks: 0,
-        peak_power_w: peak_p,
-        peak_total_power_w: (peak_total, w.plan.max_total_w),
-        peak_leg_temp_c: (peak_temp, w.plan.max_leg_temp_c),
+        peak_power_w: (peaks.power_w, w.plan.max_power_w),
+        peak_total_power_w: (peaks.total_w, w.plan.max_total_w),
+        peak_leg_temp_c: (peaks.temp_c, w.plan.max_leg_temp_c),
     })
 }
 
@@ -1226,9 +1216,7 @@ fn drive_tilt(
     let (mut t_asked, mut t_step) = (f64::NAN, f64::NAN);
     let mut sp_before: Vec<f64> = Vec::new();
     let (mut time_s, mut output) = (Vec::new(), Vec::new());
-    let mut peak_p = (f64::NEG_INFINITY, w.plan.max_power_w);
-    let mut peak_total = f64::NEG_INFINITY;
-    let mut peak_temp = f64::NEG_INFINITY;
+    let mut peaks = Peaks::default();
     let mut limit_ticks = 0u64;
     let mut last_progress: Option<Instant> = None;
     loop {
@@ -1295,26 +1283,12 @@ fn drive_tilt(
                 u64::from(heaters_limited(&s, &heater_max, w.plan.max_total_w).is_some());
         }
         if phase == Phase::Record {
-            for l in &s.legs {
-                peak_p.0 = peak_p.0.max(l.power_w);
-            }
-            peak_total = peak_total.max(s.legs.iter().map(|l| l.power_w).sum());
-            peak_temp = s
-                .legs
-                .iter()
-                .filter_map(|l| l.temp_c)
-                .fold(peak_temp, f64::max);
+            peaks.note(&s);
         }
         let finished = phase == Phase::Record && s.t_s >= t_step + opts.record_s;
         if finished || last_progress.is_none_or(|t| t.elapsed() >= opts.progress_every) {
             last_progress = Some(Instant::now());
-            let (what, done, total) = match phase {
-                Phase::Settle => ("settling", s.t_s - t0, opts.settle_s),
-                Phase::Baseline | Phase::Stepping => {
-                    ("baseline", s.t_s - t0 - opts.settle_s, opts.baseline_s)
-                }
-                Phase::Record => ("recording", s.t_s - t_step, opts.record_s),
-            };
+            let (what, done, total) = phase_progress(phase, &s, t0, t_step, opts);
             log(&format!(
                 "tune: {what} {:.0} of {total:.0} s (daemon time {:.1} s): tilt {name} {}",
                 done.max(0.0),
@@ -1347,9 +1321,9 @@ fn drive_tilt(
         output,
         drift_per_s: drift,
         limit_ticks,
-        peak_power_w: peak_p,
-        peak_total_power_w: (peak_total, w.plan.max_total_w),
-        peak_leg_temp_c: (peak_temp, w.plan.max_leg_temp_c),
+        peak_power_w: (peaks.power_w, w.plan.max_power_w),
+        peak_total_power_w: (peaks.total_w, w.plan.max_total_w),
+        peak_leg_temp_c: (peaks.temp_c, w.plan.max_leg_temp_c),
     })
 }
 
@@ -1442,6 +1416,52 @@ fn drive_relay(
     })
 }
 
+/// The highest heater power, total power and leg temperature seen while recording.
+struct Peaks {
+    power_w: f64,
+    total_w: f64,
+    temp_c: f64,
+}
+
+impl Default for Peaks {
+    fn default() -> Self {
+        Peaks {
+            power_w: f64::NEG_INFINITY,
+            total_w: f64::NEG_INFINITY,
+            temp_c: f64::NEG_INFINITY,
+        }
+    }
+}
+
+impl Peaks {
+    fn note(&mut self, s: &SampleWire) {
+        for l in &s.legs {
+            self.power_w = self.power_w.max(l.power_w);
+        }
+        self.total_w = self.total_w.max(s.legs.iter().map(|l| l.power_w).sum());
+        self.temp_c = s
+            .legs
+            .iter()
+            .filter_map(|l| l.temp_c)
+            .fold(self.temp_c, f64::max);
+    }
+}
+
+/// The phase's name, seconds done in it and its length, for a progress line.
+fn phase_progress(
+    phase: Phase,
+    s: &SampleWire,
+    t0: f64,
+    t_step: f64,
+    o: &RemoteOptions,
+) -> (&'static str, f64, f64) {
+    match phase {
+        Phase::Settle => ("settling", s.t_s - t0, o.settle_s),
+        Phase::Baseline | Phase::Stepping => ("baseline", s.t_s - t0 - o.settle_s, o.baseline_s),
+        Phase::Record => ("recording", s.t_s - t_step, o.record_s),
+    }
+}
+
 fn progress_line(
     phase: Phase,
     s: &SampleWire,
@@ -1450,11 +1470,7 @@ fn progress_line(
     t_step: f64,
     o: &RemoteOptions,
 ) -> String {
-    let (name, done, total) = match phase {
-        Phase::Settle => ("settling", s.t_s - t0, o.settle_s),
-        Phase::Baseline | Phase::Stepping => ("baseline", s.t_s - t0 - o.settle_s, o.baseline_s),
-        Phase::Record => ("recording", s.t_s - t_step, o.record_s),
-    };
+    let (name, done, total) = phase_progress(phase, s, t0, t_step, o);
     let leg = &s.legs[i];
     format!(
         "tune: {name} {:.0} of {:.0} s (daemon time {:.1} s): leg {} {} at {:.4} W",
