@@ -19,7 +19,9 @@ use std::time::{Duration, Instant};
 use record_common::{T0_UTC_NS, set_file_size_limit, spawn_child, tmp_dir};
 use stilt_config::Mode;
 use stilt_daemon::pipeline::{Command, Pipeline};
-use stilt_daemon::record::{Recorder, RecorderHandle, RecorderOptions, SegmentSet, TimeWindow};
+use stilt_daemon::record::{
+    Recorder, RecorderHandle, RecorderOptions, RecorderSink, SegmentSet, TimeWindow,
+};
 use stilt_daemon::rows::{
     ControlRow, EventKind, EventRow, Quality, RowSink, SinkError, SinkReport, TiltSample,
 };
@@ -36,10 +38,10 @@ const DISK_FULL: (f64, f64) = (14.0 * H, 18.0 * H);
 
 /// Keeps events, checks control rows on the fly, counts the rest (constant memory), and
 /// passes every row on to the recorder.
-#[derive(Clone, Default)]
+#[derive(Clone)]
 struct SoakSink(
     std::sync::Arc<std::sync::Mutex<SoakState>>,
-    Option<std::sync::Arc<std::sync::Mutex<Box<dyn RowSink>>>>,
+    std::sync::Arc<std::sync::Mutex<RecorderSink>>,
 );
 
 #[derive(Default)]
@@ -50,18 +52,10 @@ struct SoakState {
     events: Vec<EventRow>,
 }
 
-impl SoakSink {
-    fn on(&self, f: impl FnOnce(&mut dyn RowSink)) {
-        if let Some(r) = &self.1 {
-            f(r.lock().unwrap().as_mut());
-        }
-    }
-}
-
 impl RowSink for SoakSink {
     fn tilt(&mut self, t: &TiltSample) {
         self.0.lock().unwrap().tilt_rows += 1;
-        self.on(|r| r.tilt(t));
+        self.1.lock().unwrap().tilt(t);
     }
     fn control(&mut self, r: &ControlRow) {
         {
@@ -71,16 +65,14 @@ impl RowSink for SoakSink {
             }
             s.next_tick = r.tick + 1;
         }
-        self.on(|s| s.control(r));
+        self.1.lock().unwrap().control(r);
     }
     fn event(&mut self, e: &EventRow) {
         self.0.lock().unwrap().events.push(e.clone());
-        self.on(|r| r.event(e));
+        self.1.lock().unwrap().event(e);
     }
     fn finish(&mut self) -> Result<SinkReport, SinkError> {
-        let mut rep = Ok(SinkReport::default());
-        self.on(|r| rep = r.finish());
-        rep
+        self.1.lock().unwrap().finish()
     }
 }
 
@@ -237,10 +229,9 @@ fn soak(dir: &Path) {
     ro.retry_interval = Duration::from_millis(100);
     ro.queue_capacity_rows = 20_000;
     let (rec, handle) = Recorder::start(&cfg, ro).expect("the recorder starts");
-    let rec: Box<dyn RowSink> = Box::new(rec);
     let sink = SoakSink(
         Default::default(),
-        Some(std::sync::Arc::new(std::sync::Mutex::new(rec))),
+        std::sync::Arc::new(std::sync::Mutex::new(rec)),
     );
     let stage = SimStage::new(&cfg);
     let mut sim = SimLoop::new(
