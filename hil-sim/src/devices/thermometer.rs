@@ -102,7 +102,10 @@ impl RegisterBank for Image {
             rtd::MODEL_REGISTER => Ok(rtd::MODEL_CODE),
             rtd::FIRMWARE_REGISTER => Ok(FIRMWARE),
             rtd::CHANNEL_COUNT_REGISTER => Ok(n),
-            _ => Err(ExceptionCode::IllegalDataAddress),
+            a => match rtd::scan_record_alias(a) {
+                Some(m) => self.read_input(m),
+                None => Err(ExceptionCode::IllegalDataAddress),
+            },
         }
     }
 
@@ -329,6 +332,10 @@ mod tests {
         let st = exchange(&mut d, 10, &rtd::read_status(0, 4).unwrap()).unwrap();
         let st = rtd::parse_status(&st, 4).unwrap();
         assert!(st[0].is_ok() && st[2].is_ok() && st[3].open());
+        // The scan records hold the same readings and status in one reply.
+        let rec = exchange(&mut d, 15, &rtd::read_scan_records(0, 4).unwrap()).unwrap();
+        let rec = rtd::parse_scan_records(&rec, 4).unwrap();
+        assert_eq!(rec, ohms.iter().copied().zip(st).collect::<Vec<_>>());
         let n = exchange(&mut d, 20, &rtd::read_scan_counter()).unwrap();
         assert_eq!(rtd::parse_scan_counter(&n), Ok(1));
     }
@@ -358,12 +365,13 @@ mod tests {
     #[test]
     fn bad_frames_get_no_reply_and_bad_requests_get_exceptions() {
         let mut d = dev();
-        // Illegal address: exception 02 (Modbus Application Protocol V1.1b3 §7).
+        // Illegal address (the first past channel 7's scan record): exception 02 (Modbus
+        // Application Protocol V1.1b3 §7).
         let r = exchange(
             &mut d,
             0,
             &Request::ReadInputRegisters {
-                start: 0x0040,
+                start: 0x0058,
                 count: 1,
             },
         );

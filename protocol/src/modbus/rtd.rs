@@ -10,6 +10,7 @@
 //! | `0x0000 + 2·ch`, `+1` | channel `ch` (0-based, 0..8) resistance, `u32` in units of 0.1 mΩ; high word first (big-endian word order), each word big-endian as always in Modbus; `0xFFFF_FFFF` = no valid reading |
 //! | `0x0020 + ch` | channel status bits, see [`ChannelStatus`] |
 //! | `0x0030` | scan counter, +1 per completed scan of all enabled channels (wraps at 65535) |
+//! | `0x0040 + 3·ch`, `+1`, `+2` | channel `ch`'s scan record: its resistance (high word, low word) and its status, the same values as at `0x0000 + 2·ch` and `0x0020 + ch`, laid out so that one read returns a run of channels' readings with their status (see [`read_scan_records`]) |
 //! | `0x00F0` | model code [`MODEL_CODE`] |
 //! | `0x00F1` | firmware version (major·256 + minor) |
 //! | `0x00F2` | number of channels |
@@ -23,10 +24,10 @@
 //!
 //! The resistance range is 0 to [`MAX_OHMS`] (covers a Pt1000 up to +850 °C, 3904.8 Ω).
 //!
-//! Main items: request builders ([`read_resistances`], [`read_status`], [`read_scan_counter`],
+//! Main items: request builders ([`read_scan_records`], [`read_resistances`], [`read_status`], [`read_scan_counter`],
 //! [`read_config`], [`write_enable_mask`], [`write_averaging`], [`write_config`]) and reply
-//! parsers ([`parse_resistances`], [`parse_status`], [`parse_scan_counter`],
-//! [`parse_config`]); device-side [`encode_resistance`].
+//! parsers ([`parse_scan_records`], [`parse_resistances`], [`parse_status`], [`parse_scan_counter`],
+//! [`parse_config`]); device-side [`encode_resistance`] and [`scan_record_alias`].
 
 use super::{ExceptionCode, Request, Response};
 
@@ -38,6 +39,10 @@ pub const RESISTANCE_BASE: u16 = 0x0000;
 pub const STATUS_BASE: u16 = 0x0020;
 /// Scan counter input register.
 pub const SCAN_COUNTER: u16 = 0x0030;
+/// First scan-record input register; channel `ch`'s record starts at `SCAN_RECORD_BASE + 3·ch`.
+pub const SCAN_RECORD_BASE: u16 = 0x0040;
+/// Registers per scan record: resistance high word, low word, status.
+pub const SCAN_RECORD_LEN: u16 = 3;
 /// Model code input register.
 pub const MODEL_REGISTER: u16 = 0x00F0;
 /// Firmware version input register.
@@ -223,6 +228,47 @@ pub fn parse_status(resp: &Response, count: u8) -> Result<Vec<ChannelStatus>, Rt
         .collect())
 }
 
+/// Request for the scan records of `count` channels starting at `first`: each channel's
+/// resistance and status in one transaction (a poll costs the line one exchange, not two).
+pub fn read_scan_records(first: u8, count: u8) -> Result<Request, RtdError> {
+    channels(first, count)?;
+    Ok(Request::ReadInputRegisters {
+        start: SCAN_RECORD_BASE + SCAN_RECORD_LEN * u16::from(first),
+        count: SCAN_RECORD_LEN * u16::from(count),
+    })
+}
+
+/// Parses the reply to [`read_scan_records`]`(_, count)`: ohms (`None` for
+/// [`NO_READING`]) and status per channel.
+pub fn parse_scan_records(
+    resp: &Response,
+    count: u8,
+) -> Result<Vec<(Option<f64>, ChannelStatus)>, RtdError> {
+    let regs = registers(
+        resp,
+        true,
+        usize::from(SCAN_RECORD_LEN) * usize::from(count),
+    )?;
+    Ok(regs
+        .chunks_exact(usize::from(SCAN_RECORD_LEN))
+        .map(|w| (decode_resistance(w[0], w[1]), ChannelStatus(w[2])))
+        .collect())
+}
+
+/// Device side: the register a scan-record register mirrors (in the resistance or the
+/// status block), or `None` outside the records.
+pub fn scan_record_alias(address: u16) -> Option<u16> {
+    let i = address.checked_sub(SCAN_RECORD_BASE)?;
+    let (ch, field) = (i / SCAN_RECORD_LEN, i % SCAN_RECORD_LEN);
+    if ch >= u16::from(CHANNELS) {
+        return None;
+    }
+    Some(match field {
+        2 => STATUS_BASE + ch,
+        w => RESISTANCE_BASE + 2 * ch + w,
+    })
+}
+
 /// Request for the scan counter.
 pub fn read_scan_counter() -> Request {
     Request::ReadInputRegisters {
@@ -352,7 +398,10 @@ mod tests {
                 }
                 0x20..=0x27 => Ok(self.status[usize::from(a - 0x20)]),
                 MODEL_REGISTER => Ok(MODEL_CODE),
-                _ => Err(ExceptionCode::IllegalDataAddress),
+                _ => match scan_record_alias(a) {
+                    Some(m) => self.read_input(m),
+                    None => Err(ExceptionCode::IllegalDataAddress),
+                },
             }
         }
         fn check_write(&self, start: u16, values: &[u16]) -> Result<(), ExceptionCode> {
@@ -409,6 +458,38 @@ mod tests {
         assert!(encode_resistance(5000.1).is_err());
         assert!(encode_resistance(f64::NAN).is_err());
         assert!(encode_resistance(-0.1).is_err());
+    }
+
+    #[test]
+    fn scan_records_carry_the_same_values_as_the_separate_blocks() {
+        let mut d = dev();
+        // Channels 2..8: one read of 18 registers starting at 0x0046.
+        let req = read_scan_records(2, 6).unwrap();
+        assert_eq!(
+            req,
+            Request::ReadInputRegisters {
+                start: 0x0046,
+                count: 18
+            }
+        );
+        let rec = parse_scan_records(&exchange(&mut d, &req), 6).unwrap();
+        let ohms =
+            parse_resistances(&exchange(&mut d, &read_resistances(2, 6).unwrap()), 6).unwrap();
+        let st = parse_status(&exchange(&mut d, &read_status(2, 6).unwrap()), 6).unwrap();
+        assert_eq!(rec, ohms.into_iter().zip(st).collect::<Vec<_>>());
+        assert!(rec[2].1.open() && rec[4].1.over_range());
+        assert!((rec[1].0.unwrap() - 3904.8110).abs() < 0.5e-4);
+        // The map's edges: nothing below the records, nothing past channel 7's.
+        assert_eq!(scan_record_alias(0x003F), None);
+        assert_eq!(scan_record_alias(0x0040), Some(0x0000));
+        assert_eq!(scan_record_alias(0x0041), Some(0x0001));
+        assert_eq!(scan_record_alias(0x0042), Some(0x0020));
+        assert_eq!(scan_record_alias(0x0057), Some(0x0027));
+        assert_eq!(scan_record_alias(0x0058), None);
+        assert!(read_scan_records(6, 3).is_err());
+        assert!(read_scan_records(0, 0).is_err());
+        // A reply with a register count that does not fit the request is refused.
+        assert!(parse_scan_records(&Response::ReadInputRegisters(vec![0; 8]), 3).is_err());
     }
 
     #[test]
@@ -469,7 +550,7 @@ mod tests {
         let r = exchange(
             &mut d,
             &Request::ReadInputRegisters {
-                start: 0x40,
+                start: 0x58,
                 count: 1,
             },
         );
