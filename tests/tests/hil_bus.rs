@@ -174,8 +174,9 @@ fn a_silent_unit_on_the_thermometer_bus_marks_only_its_leg_and_recovers() {
         0,
         "{summary}"
     );
+    // 8 s at 2 Hz, one scan-record transaction per unit per scan: ≈ 16.
     assert!(
-        count(summary, "thermometer@1", "requests") >= 30,
+        count(summary, "thermometer@1", "requests") >= 14,
         "{summary}"
     );
     assert_eq!(
@@ -207,7 +208,8 @@ fn a_silent_unit_on_the_thermometer_bus_marks_only_its_leg_and_recovers() {
         series("stiltd_channel_timeouts_total", "thermometer@1"),
         0.0
     );
-    assert!(series("stiltd_channel_requests_total", "thermometer@1") >= 20.0);
+    // Scraped ≈ 8 s after the start at 2 Hz, one transaction per scan: ≈ 16, minus start-up.
+    assert!(series("stiltd_channel_requests_total", "thermometer@1") >= 10.0);
 
     // The simulator's own account: unit 2 lost replies, unit 1 none; each heard the other.
     let sim_summary: Value = serde_json::from_str(sim_rest.lines().last().unwrap()).unwrap();

@@ -1,8 +1,8 @@
 //! The heater supply's task: write every new drive command (SCPI, our own invented command
 //! set; channel n drives leg n−1), then read each output's current back and compare the
-//! power `I²·R` with the commanded `V²/R`. The settings of all outputs go in one program
-//! message and the readbacks in one query message (units joined by `;`, IEEE 488.2), so a
-//! tick costs the line two exchanges whatever the number of legs.
+//! power `I²·R` with the commanded `V²/R`. The settings of all outputs and the queries
+//! reading them back go in one program message (units joined by `;`, IEEE 488.2), answered
+//! in one response message, so a tick costs the line one exchange whatever the number of legs.
 //!
 //! On every (re)connection the task clears the supply's status (`*CLS`), writes the latest
 //! command (zero at start: a supply may still hold a crashed run's setting) to each channel,
@@ -90,43 +90,30 @@ pub async fn run(
             return;
         }
         let c = cmd.borrow_and_update().clone();
-        // Every output's setting in one program message (one write per tick).
-        let sets = HeaterBatch(
-            (0..n)
-                .map(|ch| HeaterRequest::SetVoltage {
-                    channel: channel(ch),
-                    volts: safe_volts(c.volts.get(ch).copied().unwrap_or(0.0)),
-                })
-                .collect(),
-        );
-        if matches!(
-            line.request(&mut session, sets).await,
-            Outcome::Disconnected
-        ) {
+        // Every output's setting, then (with readback) every output's current, in one
+        // program message: one write and at most one response per tick. The queries come
+        // after the settings, so they read the new setting back.
+        let mut units: Vec<HeaterRequest> = (0..n)
+            .map(|ch| HeaterRequest::SetVoltage {
+                channel: channel(ch),
+                volts: safe_volts(c.volts.get(ch).copied().unwrap_or(0.0)),
+            })
+            .collect();
+        if link.readback {
+            units.extend((0..n).map(|ch| HeaterRequest::MeasureCurrent {
+                channel: channel(ch),
+            }));
+        }
+        let outcome = line.request(&mut session, HeaterBatch(units)).await;
+        if matches!(outcome, Outcome::Disconnected) {
             // Reconnect, re-initialise and write the newest command again.
             need_init = true;
             continue;
         }
+        // The settings went out (a failed readback is the query's failure, not theirs).
         shared.with(|s| s.applied_generation = s.applied_generation.max(c.generation));
-        // A newer command waits for no readback: it goes out first.
-        if !link.readback || cmd.has_changed().unwrap_or(false) {
+        let Outcome::Reply(replies) = outcome else {
             continue;
-        }
-        // Every output's current in one query message, answered in one response.
-        let query = HeaterBatch(
-            (0..n)
-                .map(|ch| HeaterRequest::MeasureCurrent {
-                    channel: channel(ch),
-                })
-                .collect(),
-        );
-        let replies = match line.request(&mut session, query).await {
-            Outcome::Reply(r) => r,
-            Outcome::Disconnected => {
-                need_init = true;
-                continue;
-            }
-            _ => continue,
         };
         for (ch, ((v, r), reply)) in c.volts.iter().zip(&resistances).zip(replies).enumerate() {
             let HeaterReply::Amps(amps) = reply else {

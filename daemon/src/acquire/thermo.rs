@@ -1,7 +1,7 @@
 //! The thermometer line's task: every `1/poll_hz`, for each Modbus unit on the line in
-//! turn (one unit, or an RS-485 bus of several), read the resistances and then the status
-//! of its legs' channels (Modbus RTU, our own invented RTD register map) and convert them
-//! to °C (IEC 60751 via `stilt_protocol::convert::PlatinumRtd`).
+//! turn (one unit, or an RS-485 bus of several), read the scan records (resistance and
+//! status) of its legs' channels in one transaction (Modbus RTU, our own invented RTD
+//! register map) and convert them to °C (IEC 60751 via `stilt_protocol::convert::PlatinumRtd`).
 //!
 //! A channel whose status says open, over or under range, whose register holds "no
 //! reading", or whose resistance lies outside the standard's range is `out_of_range`; a
@@ -49,8 +49,8 @@ struct Unit {
     first: u8,
     /// Channels read from `first`.
     count: u8,
-    read_r: Transaction,
-    read_s: Transaction,
+    /// Reads the scan records of channels `first .. first + count`.
+    read: Transaction,
     /// Its own counters channel, on a line of several units.
     counters: Option<usize>,
     /// Its first slot in the store's `temps` (`k · 8`).
@@ -77,10 +77,7 @@ fn units(link: &ThermometerLink, slots: &[usize]) -> Option<Vec<Unit>> {
         let tx = |r: Result<stilt_protocol::modbus::Request, rtd::RtdError>| {
             r.ok().and_then(|r| Transaction::new(address, r).ok())
         };
-        let (Some(read_r), Some(read_s)) = (
-            tx(rtd::read_resistances(first, count)),
-            tx(rtd::read_status(first, count)),
-        ) else {
+        let Some(read) = tx(rtd::read_scan_records(first, count)) else {
             tracing::error!(
                 unit = address,
                 first,
@@ -93,8 +90,7 @@ fn units(link: &ThermometerLink, slots: &[usize]) -> Option<Vec<Unit>> {
             address,
             first,
             count,
-            read_r,
-            read_s,
+            read,
             counters: several.then_some(FIRST_UNIT_CHANNEL + k),
             slot_base: base,
             stuck: vec![super::tilt::Stuck::default(); usize::from(count)],
@@ -106,7 +102,7 @@ fn units(link: &ThermometerLink, slots: &[usize]) -> Option<Vec<Unit>> {
 /// Runs until aborted. `slots` are the legs' places in the store's `temps`
 /// ([`super::thermo_slots`]: unit index · 8 + channel, each channel < 8).
 ///
-/// Every period each unit is read in turn (resistances, then status) through one session,
+/// Every period each unit is read in turn (one scan-record transaction each) through one session,
 /// so the t3.5 silence separates every transaction on the line, whichever unit it is for.
 /// A unit whose request fails marks only its own channels and is skipped until the next
 /// period; the others are read as usual.
@@ -142,7 +138,8 @@ pub async fn run(
     }
 }
 
-/// One unit's scan: resistances, then status; the readings (or the failure) go to its slots.
+/// One unit's scan: one transaction for its channels' resistances and status; the readings
+/// (or the failure) go to its slots.
 async fn read_unit(
     line: &mut Line,
     session: &mut Session<Transaction>,
@@ -173,11 +170,11 @@ async fn read_unit(
         });
         fail(Quality::BadFrame);
     };
-    let ohms = match line
-        .request_counted(session, u.read_r.clone(), u.counters)
+    let records = match line
+        .request_counted(session, u.read.clone(), u.counters)
         .await
     {
-        Outcome::Reply(resp) => match rtd::parse_resistances(&resp, count) {
+        Outcome::Reply(resp) => match rtd::parse_scan_records(&resp, count) {
             Ok(v) => v,
             Err(e) => {
                 tracing::debug!(unit = u.address, error = %e, "thermometer reply unusable");
@@ -195,30 +192,9 @@ async fn read_unit(
         }
         Outcome::Sent | Outcome::Disconnected => return,
     };
-    let status = match line
-        .request_counted(session, u.read_s.clone(), u.counters)
-        .await
-    {
-        Outcome::Reply(resp) => match rtd::parse_status(&resp, count) {
-            Ok(v) => v,
-            Err(_) => {
-                bad_frame(u.counters);
-                return;
-            }
-        },
-        Outcome::Failed { timeout, .. } => {
-            fail(if timeout {
-                Quality::Timeout
-            } else {
-                Quality::BadFrame
-            });
-            return;
-        }
-        Outcome::Sent | Outcome::Disconnected => return,
-    };
     let (t_acq_s, t_utc_ns) = (secs_since(origin), now_utc_ns());
     shared.with(|s| {
-        for (k, (r, st)) in ohms.iter().zip(&status).enumerate() {
+        for (k, (r, st)) in records.iter().enumerate() {
             if st.not_ready() {
                 continue;
             }
