@@ -562,12 +562,22 @@ mod tests {
 
     proptest! {
         #[test]
-        fn parsers_never_panic(values in proptest::collection::vec(any::<u16>(), 0..20), n in 0u8..10, holding in any::<bool>()) {
+        fn parsers_never_panic(values in proptest::collection::vec(any::<u16>(), 0..30), n in 0u8..10, holding in any::<bool>()) {
             let r = if holding { Response::ReadHoldingRegisters(values) } else { Response::ReadInputRegisters(values) };
+            let _ = parse_scan_records(&r, n);
             let _ = parse_resistances(&r, n);
             let _ = parse_status(&r, n);
             let _ = parse_config(&r);
             let _ = parse_scan_counter(&r);
+        }
+
+        #[test]
+        fn scan_record_aliases_stay_in_the_map(address in any::<u16>()) {
+            if let Some(m) = scan_record_alias(address) {
+                let in_resistances = m < RESISTANCE_BASE + 2 * u16::from(CHANNELS);
+                let in_status = (STATUS_BASE..STATUS_BASE + u16::from(CHANNELS)).contains(&m);
+                prop_assert!(in_resistances || in_status, "{address:#06x} -> {m:#06x}");
+            }
         }
 
         #[test]
