@@ -2,11 +2,14 @@
 //!
 //! [`bin`] finds a workspace binary next to the test executable (cargo builds every
 //! binary of the workspace before running `cargo test --workspace`), building it once
-//! if it is missing; [`workspace`] gives paths inside the repository.
+//! if it is missing; [`workspace`] gives paths inside the repository; [`json_lines`],
+//! [`channel`] and [`count`] read the JSON lines `stiltd run --status-json` prints.
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::sync::Once;
+
+use serde_json::Value;
 
 /// The repository root.
 pub fn workspace() -> PathBuf {
@@ -63,4 +66,27 @@ pub fn scratch(name: &str) -> PathBuf {
     let _ = std::fs::remove_dir_all(&d);
     std::fs::create_dir_all(&d).expect("scratch dir");
     d
+}
+
+/// Every line of `stdout` parsed as JSON (a line that is not JSON fails the test, naming it).
+pub fn json_lines(stdout: &[u8]) -> Vec<Value> {
+    String::from_utf8_lossy(stdout)
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap_or_else(|e| panic!("{e}: {l}")))
+        .collect()
+}
+
+/// The channel called `name` in a status or summary's `channels` list.
+pub fn channel<'a>(v: &'a Value, name: &str) -> &'a Value {
+    v["channels"]
+        .as_array()
+        .and_then(|a| a.iter().find(|c| c["name"] == name))
+        .unwrap_or_else(|| panic!("no channel {name} in {v}"))
+}
+
+/// Counter `key` (`requests`, `timeouts`, …) of channel `name`.
+pub fn count(v: &Value, name: &str, key: &str) -> u64 {
+    channel(v, name)[key]
+        .as_u64()
+        .unwrap_or_else(|| panic!("no counter {key} for {name} in {v}"))
 }

@@ -10,7 +10,7 @@ use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 
 use serde_json::Value;
-use stilt_tests::{bin, scratch, workspace};
+use stilt_tests::{bin, channel, count, json_lines, scratch, workspace};
 
 /// The shipped HIL stage with leg C moved to channel 0 of unit 2 (legs A and B stay on
 /// unit 1), and readings stale after 1 s so that a silent unit shows within the run.
@@ -27,19 +27,6 @@ fn bus_stage() -> String {
     assert!(out.contains("units = [1, 2]") && out.contains("thermometer_unit = 2"));
     assert!(out.contains("stale_after_s = 1.0"));
     out
-}
-
-fn channel<'a>(v: &'a Value, name: &str) -> &'a Value {
-    v["channels"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .find(|c| c["name"] == name)
-        .unwrap_or_else(|| panic!("no channel {name} in {v}"))
-}
-
-fn count(v: &Value, name: &str, key: &str) -> u64 {
-    channel(v, name)[key].as_u64().unwrap()
 }
 
 #[test]
@@ -138,10 +125,7 @@ fn a_silent_unit_on_the_thermometer_bus_marks_only_its_leg_and_recovers() {
 
     assert_eq!(out.status.code(), Some(0), "stderr:\n{stderr}");
     assert!(!stderr.contains("panicked"), "{stderr}");
-    let lines: Vec<Value> = String::from_utf8_lossy(&out.stdout)
-        .lines()
-        .map(|l| serde_json::from_str(l).unwrap_or_else(|e| panic!("{e}: {l}")))
-        .collect();
+    let lines = json_lines(&out.stdout);
     let (summary, status) = lines.split_last().expect("a summary line");
     assert_eq!(summary["reason"], "run complete", "{stderr}");
     let q = |s: &Value, i: usize| s["legs"][i]["quality"].as_str().unwrap().to_owned();

@@ -8,7 +8,7 @@ use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 
 use serde_json::Value;
-use stilt_tests::{bin, scratch};
+use stilt_tests::{bin, channel, count, json_lines, scratch};
 
 /// Runs `stiltd hil` with `faults` (TOML text) and extra arguments; returns the status lines
 /// and the summary.
@@ -61,25 +61,9 @@ fn hil(
     );
     assert_eq!(out.status.code(), Some(0), "stderr:\n{stderr}");
     assert!(!stderr.contains("panicked"), "{stderr}");
-    let lines: Vec<Value> = String::from_utf8_lossy(&out.stdout)
-        .lines()
-        .map(|l| serde_json::from_str(l).unwrap_or_else(|e| panic!("{e}: {l}")))
-        .collect();
+    let lines = json_lines(&out.stdout);
     let (summary, status) = lines.split_last().expect("a summary line");
     (status.to_vec(), summary.clone(), stderr)
-}
-
-fn channel<'a>(v: &'a Value, name: &str) -> &'a Value {
-    v["channels"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .find(|c| c["name"] == name)
-        .unwrap_or_else(|| panic!("no channel {name} in {v}"))
-}
-
-fn count(v: &Value, name: &str, key: &str) -> u64 {
-    channel(v, name)[key].as_u64().unwrap()
 }
 
 #[test]
