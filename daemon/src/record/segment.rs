@@ -90,6 +90,22 @@ fn append_rows<W: H5Type>(
     Ok(b)
 }
 
+/// A dataset of `W` rows that grows along its one axis: chunks of `chunk_rows`, shuffled
+/// and deflated at `level`.
+fn growable<W: H5Type>(
+    file: &File,
+    name: &str,
+    chunk_rows: usize,
+    level: u8,
+) -> hdf5::Result<Dataset> {
+    file.new_dataset::<W>()
+        .chunk(chunk_rows.max(1))
+        .shape(0..)
+        .shuffle()
+        .deflate(level)
+        .create(name)
+}
+
 fn h5(path: &Path, what: &str) -> impl Fn(hdf5::Error) -> RecordError + use<> {
     let path = path.to_path_buf();
     let what = what.to_owned();
@@ -206,21 +222,9 @@ impl SegmentWriter {
         .map_err(e("write the root attributes"))?;
 
         let lvl = opts.deflate_level.min(9);
-        let tilt = file
-            .new_dataset::<TiltWire>()
-            .chunk(opts.tilt_chunk_rows.max(1))
-            .shape(0..)
-            .shuffle()
-            .deflate(lvl)
-            .create(DS_TILT)
+        let tilt = growable::<TiltWire>(&file, DS_TILT, opts.tilt_chunk_rows, lvl)
             .map_err(e("create dataset tilt"))?;
-        let control = file
-            .new_dataset::<ControlWire>()
-            .chunk(opts.control_chunk_rows.max(1))
-            .shape(0..)
-            .shuffle()
-            .deflate(lvl)
-            .create(DS_CONTROL)
+        let control = growable::<ControlWire>(&file, DS_CONTROL, opts.control_chunk_rows, lvl)
             .map_err(e("create dataset control"))?;
         let legs_ds = file
             .new_dataset::<LegWire>()
@@ -230,13 +234,7 @@ impl SegmentWriter {
             .deflate(lvl)
             .create(DS_CONTROL_LEGS)
             .map_err(e("create dataset control_legs"))?;
-        let events = file
-            .new_dataset::<EventWire>()
-            .chunk(opts.event_chunk_rows.max(1))
-            .shape(0..)
-            .shuffle()
-            .deflate(lvl)
-            .create(DS_EVENTS)
+        let events = growable::<EventWire>(&file, DS_EVENTS, opts.event_chunk_rows, lvl)
             .map_err(e("create dataset events"))?;
         // Chunked too: contiguous datasets are unreadable by SWMR readers from HDF5 1.14.4.
         let state_ds = file
