@@ -68,11 +68,14 @@ median() { sort -g | awk '{v[NR] = $1} END {print (NR % 2) ? v[(NR + 1) / 2] : (
 new=()
 old=()
 for i in $(seq 1 "$runs"); do
-  read -r d s < <(one_run "$bin")
+  # Not in a subshell: the trap must see the pids, and a failed run must end the script.
+  one_run "$bin" > "$work/run.out"
+  read -r d s < "$work/run.out"
   echo "run $i: stiltd $d % of one core, stilt-hil-sim $s % (this build)"
   new+=("$d")
   if [ -n "${BASELINE_BIN:-}" ]; then
-    read -r d s < <(one_run "$BASELINE_BIN")
+    one_run "$BASELINE_BIN" > "$work/run.out"
+    read -r d s < "$work/run.out"
     echo "run $i: stiltd $d % of one core, stilt-hil-sim $s % (baseline $BASELINE_BIN)"
     old+=("$d")
   fi
